@@ -1,0 +1,43 @@
+"""Shared test helpers.
+
+Tests that need a real service (a broker, a database, a browser) call `require_service`:
+on a developer's laptop without the service they skip with a clear reason; under CI=true a
+missing service is a failure, never a skip.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT / "tests"))
+
+SHARED = ROOT.parent / "shared"
+
+
+def in_ci() -> bool:
+    """True when running under CI, where every service must be present."""
+    return os.environ.get("CI", "").lower() in {"1", "true", "yes"}
+
+
+def require_service(name: str, available: bool, how: str) -> None:
+    """Skip (laptop) or fail (CI=true) when service `name` is not available."""
+    if available:
+        return
+    message = f"{name} is not available here; {how}"
+    if in_ci():
+        pytest.fail(f"CI=true but {message}")
+    pytest.skip(message)
+
+
+def require_executable(program: str, package: str) -> str:
+    """Return the path of `program`, or skip/fail saying which Debian package provides it."""
+    path = shutil.which(program)
+    require_service(program, path is not None, f"install the Debian package '{package}'")
+    assert path is not None
+    return path
