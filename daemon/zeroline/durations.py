@@ -64,7 +64,9 @@ def parse_rate(text: object) -> float:
     try:
         value = float(amount)
     except ValueError:
-        raise ConfigError(f"{text!r} is not a rate; the amount before '/' must be a number") from None
+        raise ConfigError(
+            f"{text!r} is not a rate; the amount before '/' must be a number"
+        ) from None
     unit = unit.strip()
     per = parse_duration(unit if unit[:1].isdigit() else "1" + unit, allow_zero=False)
     return value / per

@@ -18,7 +18,12 @@ class UserError(ZerolineError):
 
 
 class ConfigError(UserError):
-    """A config or basis definition is invalid."""
+    """A config or basis definition is invalid; `path` is the dotted key path of the problem."""
+
+    def __init__(self, message: str, path: str = "") -> None:
+        super().__init__(f"{path}: {message}" if path else message)
+        self.message = message
+        self.path = path
 
 
 class ExpressionError(ConfigError):

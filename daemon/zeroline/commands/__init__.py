@@ -1,0 +1,1 @@
+"""One module per `zeroline` sub-command; `zeroline.cli` wires them to argparse."""

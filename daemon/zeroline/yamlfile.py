@@ -1,0 +1,102 @@
+"""YAML loading that remembers where every key came from.
+
+Config errors must read `file:line: key.path: problem; what would be right`, so the loader
+keeps, for every key path (`channels[0].learn.mode`), the line it was written on. Only the
+safe YAML subset is built (no Python tags), and a key given twice in one mapping is an error
+rather than the silent "last one wins" of plain `yaml.safe_load`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from zeroline.errors import ConfigError
+
+
+@dataclass(frozen=True)
+class Located:
+    """Plain Python data from a YAML file, with the line of every key path."""
+
+    path: str
+    data: Any
+    lines: dict[str, int]
+
+    def line_of(self, key_path: str) -> int:
+        """The line of `key_path`, or of its nearest parent that has one (1 if none)."""
+        probe = key_path
+        while probe:
+            if probe in self.lines:
+                return self.lines[probe]
+            cut = max(probe.rfind("."), probe.rfind("["))
+            probe = probe[:cut] if cut > 0 else ""
+        return 1
+
+    def where(self, key_path: str) -> str:
+        """`file:line` for a key path."""
+        return f"{self.path}:{self.line_of(key_path)}"
+
+
+def load_yaml(path: str | Path) -> Located:
+    """Read and parse a YAML file; ConfigError `file:line: ...` for syntax errors."""
+    name = str(path)
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except OSError as error:
+        raise ConfigError(f"{name}: cannot read ({error.strerror}); check the path") from None
+    except UnicodeDecodeError:
+        raise ConfigError(f"{name}: not UTF-8 text") from None
+    return parse_yaml(text, name)
+
+
+def parse_yaml(text: str, name: str = "<config>") -> Located:
+    """Parse YAML text; see `load_yaml`."""
+    try:
+        node = yaml.compose(text, Loader=yaml.SafeLoader)
+    except yaml.MarkedYAMLError as error:
+        mark = error.problem_mark
+        line = mark.line + 1 if mark is not None else 1
+        raise ConfigError(f"{name}:{line}: YAML syntax error: {error.problem}") from None
+    except yaml.YAMLError as error:
+        raise ConfigError(f"{name}: YAML error: {error}") from None
+    lines: dict[str, int] = {}
+    if node is None:
+        return Located(name, None, lines)
+    constructor = yaml.SafeLoader(text)  # only used for its scalar constructors
+    try:
+        data = _build(node, "", lines, constructor, name)
+    finally:
+        constructor.dispose()
+    return Located(name, data, lines)
+
+
+def _build(
+    node: yaml.Node, path: str, lines: dict[str, int], loader: yaml.SafeLoader, name: str
+) -> Any:
+    lines.setdefault(path, node.start_mark.line + 1)
+    if isinstance(node, yaml.MappingNode):
+        result: dict[str, Any] = {}
+        for key_node, value_node in node.value:
+            key = loader.construct_object(key_node, deep=True)
+            if not isinstance(key, (str, int, float, bool)) or isinstance(key, bool):
+                raise ConfigError(f"{name}:{key_node.start_mark.line + 1}: keys must be names")
+            key = str(key)
+            child = f"{path}.{key}" if path else key
+            if key in result:
+                raise ConfigError(
+                    f"{name}:{key_node.start_mark.line + 1}: {child}: key given twice; keep one"
+                )
+            lines[child] = key_node.start_mark.line + 1
+            result[key] = _build(value_node, child, lines, loader, name)
+        return result
+    if isinstance(node, yaml.SequenceNode):
+        return [
+            _build(item, f"{path}[{i}]", lines, loader, name) for i, item in enumerate(node.value)
+        ]
+    try:
+        return loader.construct_object(node, deep=True)
+    except yaml.constructor.ConstructorError as error:
+        raise ConfigError(f"{name}:{node.start_mark.line + 1}: {error.problem}") from None
