@@ -10,12 +10,13 @@ import re
 
 from zeroline.errors import ConfigError
 
-#: Unit words accepted after a number, in seconds. `m` is deliberately absent: it reads as
-#: metres or months as easily as minutes.
+#: Unit words accepted after a number, in seconds. `m` is minutes, as in most duration
+#: notations of monitoring tools (there is no month: months differ in length).
 UNIT_SECONDS: dict[str, float] = {
     "ms": 1e-3,
     "s": 1.0,
     "sec": 1.0,
+    "m": 60.0,
     "min": 60.0,
     "h": 3600.0,
     "d": 86400.0,

@@ -8,6 +8,7 @@ rather than the silent "last one wins" of plain `yaml.safe_load`.
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -59,7 +60,13 @@ def parse_yaml(text: str, name: str = "<config>") -> Located:
     except yaml.MarkedYAMLError as error:
         mark = error.problem_mark
         line = mark.line + 1 if mark is not None else 1
-        raise ConfigError(f"{name}:{line}: YAML syntax error: {error.problem}") from None
+        hint = ""
+        source_line = text.splitlines()[line - 1] if 0 < line <= len(text.splitlines()) else ""
+        if re.search(r"\{\d+\}", source_line):
+            hint = (
+                '; inside { } a placeholder like {1} must be quoted: topic: "site/{1}/met/temp"'
+            )
+        raise ConfigError(f"{name}:{line}: YAML syntax error: {error.problem}{hint}") from None
     except yaml.YAMLError as error:
         raise ConfigError(f"{name}: YAML error: {error}") from None
     lines: dict[str, int] = {}
