@@ -526,7 +526,7 @@ class CorrectionCapRule(_LatchedRule):
         *,
         channel: str,
         cap: float,
-        clear_fraction: float = 0.95,
+        clear_fraction: float = 0.9,
         dwell: float = 0.0,
         clear_dwell: float | None = None,
         severity: str = "critical",
