@@ -487,6 +487,12 @@ class TestForecastRule:
         (cleared,) = rule.observe(2 * DAY, self.linear(2 * DAY, limit / (30 * DAY), 0.0))
         assert cleared.state == "cleared" and cleared.value is None
 
+    def test_non_finite_forecast_is_skipped(self) -> None:
+        """A forecast with NaN in it changes nothing and raises no error."""
+        rule = ForecastRule(channel="a", drift_limit=1.0, horizon_s=DAY)
+        assert rule.observe(0.0, lambda t: (np.full_like(t, np.nan), np.zeros_like(t))) == []
+        assert rule.observe(1.0, lambda t: (np.full_like(t, 2.0), np.zeros_like(t)))[0].value == 0
+
     def test_min_interval_skips_evaluation(self) -> None:
         """Within min_interval of the last evaluation the predictor is not called."""
         calls: list[float] = []

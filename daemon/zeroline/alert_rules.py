@@ -333,10 +333,18 @@ class ForecastRule(_LatchedRule):
     def observe_grid(
         self, time: float, times: npt.ArrayLike, mean: npt.ArrayLike, sd: npt.ArrayLike
     ) -> list[AlertEvent]:
-        """Feed a forecast given on the caller's grid (it should reach clear_factor·horizon)."""
+        """Feed a forecast given on the caller's grid (it should reach clear_factor·horizon).
+
+        A forecast with non-finite numbers (e.g. from a model that has lost its footing,
+        which model_health reports) carries no information and is skipped.
+        """
         self._last_evaluated = time
         grid = np.asarray(times, dtype=np.float64)
-        crossing = crossing_time(grid, mean, sd, self.drift_limit, self._z)
+        predicted = np.asarray(mean, dtype=np.float64)
+        spread = np.asarray(sd, dtype=np.float64)
+        if not (np.all(np.isfinite(predicted)) and np.all(np.isfinite(spread))):
+            return []
+        crossing = crossing_time(grid, predicted, spread, self.drift_limit, self._z)
         to_crossing = math.inf if crossing is None else crossing.earliest - time
         change = self._latch.update(time, to_crossing)
         if change is None:
@@ -596,10 +604,12 @@ class ModelHealthRule(_LatchedRule):
         change = self._latch.update(time, float(len(names)))
         if change == "cleared":
             return [self._emit(time, "cleared", 0.0, None, "model healthy again")]
-        if change == "raised" or (
-            was_active is not None and names and was_active.message != _problem_message(names)
-        ):
-            return [self._emit(time, "raised", float(len(names)), None, _problem_message(names))]
+        message = _problem_message(names)
+        # The active event's message names the problems it was raised for (and survives a
+        # snapshot with it), so comparing messages tells whether the set has changed.
+        changed = was_active is not None and bool(names) and was_active.message != message
+        if change == "raised" or changed:
+            return [self._emit(time, "raised", float(len(names)), None, message)]
         return []
 
 

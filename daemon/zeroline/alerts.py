@@ -26,7 +26,8 @@ The other two primitives are the maths of two rules, kept pure so they can be ch
 
 Everything here is deterministic and holds its state in JSON-able dicts (`to_state`,
 `from_state`), because alert state is part of the channel snapshot that survives restarts.
-The rules themselves and the per-channel `AlertBook` live in `zeroline.alert_rules`.
+The rules themselves live in `zeroline.alert_rules`, the per-channel `AlertBook` in
+`zeroline.alert_book`.
 """
 
 from __future__ import annotations
