@@ -12,7 +12,8 @@ import traceback
 from collections.abc import Sequence
 
 from zeroline import __version__
-from zeroline.commands import fit
+from zeroline.commands import check, fit, replay
+from zeroline.config import ConfigProblemsError
 from zeroline.errors import UserError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_USAGE = 0, 1, 2
@@ -33,7 +34,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"zeroline {__version__}")
     commands = parser.add_subparsers(title="commands", metavar="COMMAND", parser_class=_Parser)
-    for module in (fit,):
+    for module in (check, fit, replay):
         module.add_parser(commands)
     return parser
 
@@ -46,6 +47,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         return EXIT_USAGE
     try:
         return int(args.handler(args))
+    except ConfigProblemsError as problems:
+        for line in problems.lines:
+            print(line, file=sys.stderr)
+        return EXIT_USAGE
     except UserError as error:
         print(f"zeroline: error: {error}", file=sys.stderr)
         return EXIT_USAGE

@@ -63,9 +63,7 @@ def parse_yaml(text: str, name: str = "<config>") -> Located:
         hint = ""
         source_line = text.splitlines()[line - 1] if 0 < line <= len(text.splitlines()) else ""
         if re.search(r"\{\d+\}", source_line):
-            hint = (
-                '; inside { } a placeholder like {1} must be quoted: topic: "site/{1}/met/temp"'
-            )
+            hint = '; inside { } a placeholder like {1} must be quoted: topic: "site/{1}/met/temp"'
         raise ConfigError(f"{name}:{line}: YAML syntax error: {error.problem}{hint}") from None
     except yaml.YAMLError as error:
         raise ConfigError(f"{name}: YAML error: {error}") from None

@@ -1,0 +1,521 @@
+"""Where a reading becomes a corrected reading.
+
+One `Channel` per sensor stream. For each reading it
+
+1. looks up the named inputs (covariates, reference) and decides what the sample can teach,
+   per the learn mode (design §1):
+   - `all`:       target raw − nominal, every sample;
+   - `reference`: target raw − reference, only samples with a fresh reference value; with a
+                  gain basis ψ the row is [ψ·reference, φ] against raw, so raw = ψᵀa·ref + φᵀθ
+                  is solved as one linear least-squares problem;
+   - `envelope`:  like `all`, but samples far above the current baseline get a small weight,
+                  so sparse positive events (peaks, plumes) do not lift it;
+   optionally with Huber weights (any mode) so one bad sample cannot drag the baseline;
+2. updates the recursive estimator with that row (`zeroline.estimator`);
+3. corrects: corrected = raw − baseline, or (raw − baseline)/gain, with the baseline's
+   standard uncertainty σ̂·√(φᵀPφ) (delta method when a gain is fitted) and quality flags;
+4. caps the correction if configured, and feeds the alert rules (`zeroline.channel_alerts`).
+
+The channel never does I/O; the daemon and `zeroline replay` drive the same class, which is
+what makes a replay a faithful rehearsal of the daemon.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from zeroline import quality as q
+from zeroline.basis import Basis
+from zeroline.channel_alerts import ChannelAlerts
+from zeroline.config import ChannelConfig
+from zeroline.errors import InputError
+from zeroline.estimator import RecursiveEstimator
+from zeroline.inputs import InputCache
+
+Array = npt.NDArray[np.float64]
+STATE_VERSION = 1
+CONTROL_EVENTS = ("recalibrated", "cleaned", "replaced")
+CONDITION_EVERY = 32
+INPUT_MEAN_TAU = 86400.0  # time constant of the input means that drift is judged at
+
+
+@dataclass(frozen=True)
+class Sample:
+    """One raw reading of a channel: UTC epoch seconds, the value, other payload fields."""
+
+    time: float
+    value: float
+    fields: Mapping[str, float] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Corrected:
+    """The outcome for one reading (the contract fields first, then diagnostics)."""
+
+    time: float
+    raw: float
+    corrected: float | None
+    baseline: float | None
+    uncertainty: float | None
+    quality: str
+    quality_code: int
+    flags: tuple[str, ...]
+    gain: float | None
+    drift_rate: float | None
+    learned: bool
+    coefficients: Array | None = None
+
+    def to_json(self) -> dict[str, Any]:
+        """The `<prefix>/<channel>/corrected` payload (design §4) plus diagnostic fields."""
+        return {
+            "time": self.time,
+            "raw": self.raw,
+            "corrected": _finite(self.corrected),
+            "baseline": _finite(self.baseline),
+            "uncertainty": _finite(self.uncertainty),
+            "quality": self.quality,
+            "quality_code": self.quality_code,
+            "flags": list(self.flags),
+            "gain": _finite(self.gain),
+            "drift_rate": _finite(self.drift_rate),
+        }
+
+
+def _finite(value: float | None) -> float | None:
+    return value if value is not None and math.isfinite(value) else None
+
+
+@dataclass(frozen=True)
+class ControlEvent:
+    """A technician's action: recalibrated (mode reset|rezero), cleaned, replaced."""
+
+    time: float
+    event: str
+    mode: str = "reset"
+
+    @staticmethod
+    def parse(data: Mapping[str, Any], default_time: float) -> ControlEvent:
+        """From a control payload/events-file row; InputError with the fix if malformed."""
+        event = data.get("event")
+        if event not in CONTROL_EVENTS:
+            raise InputError(
+                f"control event {event!r} is not known; use one of {', '.join(CONTROL_EVENTS)}"
+            )
+        mode = data.get("mode") or ("rezero" if event == "cleaned" else "reset")
+        if mode not in ("reset", "rezero"):
+            raise InputError(f"control mode {mode!r} is not known; use reset or rezero")
+        time = data.get("time", default_time)
+        if isinstance(time, bool) or not isinstance(time, (int, float)) or not math.isfinite(time):
+            raise InputError(f"control time {time!r} is not epoch seconds")
+        return ControlEvent(float(time), str(event), str(mode))
+
+
+class Channel:
+    """One sensor stream's model: feed it readings with `process`, actions with `control`."""
+
+    def __init__(self, config: ChannelConfig, name: str | None = None) -> None:
+        self.config = config
+        self.name = name or config.name
+        self.learn = config.learn
+        self._offset_size = config.basis.size
+        self._gain_size = config.gain.size if config.gain is not None else 0
+        self._min_samples = config.learn.min_samples or 2 * self.n_terms
+        self._estimator = self._new_estimator()
+        self._inputs = InputCache({i.name: i.max_age for i in config.inputs.values()})
+        self._epoch: float | None = config.epoch
+        self._basis: Basis | None = None
+        self._gain: Basis | None = None
+        self._last_time = -math.inf
+        self._last_useful = -math.inf
+        self._condition: float | None = None
+        self._input_means: dict[str, float] = {}
+        self._means_time: float | None = None
+        self._since_condition = 0
+        self.alerts = ChannelAlerts(self.name, config.alerts, cap=config.cap)
+        if self._epoch is not None:
+            self._bind(self._epoch)
+
+    # --- public -------------------------------------------------------------------------
+
+    @property
+    def n_terms(self) -> int:
+        return self._offset_size + self._gain_size
+
+    @property
+    def estimator(self) -> RecursiveEstimator:
+        return self._estimator
+
+    @property
+    def epoch(self) -> float | None:
+        return self._epoch
+
+    @property
+    def last_time(self) -> float:
+        return self._last_time
+
+    def set_input(self, name: str, time: float, value: float) -> None:
+        """A value of a named input that arrived on its own topic."""
+        if name in self.config.inputs:
+            self._inputs.put(name, time, value)
+
+    def process(self, sample: Sample) -> tuple[Corrected, list[Any]]:
+        """Correct one reading (and learn from it if it is useful); returns alert events too.
+
+        A reading not newer than the last one processed is the caller's to skip (the daemon
+        counts those as duplicates); here it raises InputError.
+        """
+        if sample.time <= self._last_time:
+            raise InputError(
+                f"reading at {sample.time} is not newer than the last one ({self._last_time})"
+            )
+        self._last_time = sample.time
+        if self._epoch is None:
+            self._bind(sample.time)
+        assert self._basis is not None
+        for spec in self.config.inputs.values():
+            if spec.field is not None and spec.field in sample.fields:
+                self._inputs.put(spec.name, sample.time, sample.fields[spec.field])
+        t = sample.time - (self._epoch or 0.0)
+        covariates, flags, missing = self._covariates(sample.time)
+        if missing:
+            return self._uncorrectable(sample, flags), self.alerts.on_missing(sample.time, flags)
+        phi = self._basis.evaluate(np.array([t]), covariates)[0]
+        psi = self._gain.evaluate(np.array([t]), covariates)[0] if self._gain else None
+        learned, check_error, z = self._learn(sample, t, phi, psi, stale="input_stale" in flags)
+        if learned:
+            self._last_useful = sample.time
+        result = self._correct(sample, t, phi, psi, covariates, flags, learned)
+        self._track_means(sample.time, covariates)
+        if self._established():
+            drift, rate = self._drift_at_means(t)
+            events = self.alerts.observe(
+                result,
+                drift=drift,
+                rate=rate,
+                z=z,
+                check_error=check_error,
+                forecast=self._forecaster(),
+                health=self._health(flags, phi, psi),
+            )
+        else:  # an untrained model's drift and residuals say nothing about the sensor
+            events = self.alerts.observe(
+                result,
+                drift=None,
+                rate=None,
+                z=None,
+                check_error=None,
+                forecast=None,
+                health=self._health(flags, phi, psi),
+            )
+        return result, events
+
+    def control(self, event: ControlEvent) -> list[Any]:
+        """Apply a technician's action so it does not read as drift; returns alert clears."""
+        if event.event == "replaced" or event.mode == "reset":
+            self._estimator.reset()
+            if event.event == "replaced":
+                self._epoch = self.config.epoch
+                self._basis = self._gain = None
+                if self._epoch is not None:
+                    self._bind(self._epoch)
+                self._last_time = -math.inf
+            self._last_useful = -math.inf
+        else:
+            self._rezero(event.time)
+        return self.alerts.reset(event.time, f"{event.event} ({event.mode})")
+
+    # --- learning -----------------------------------------------------------------------
+
+    def _new_estimator(self) -> RecursiveEstimator:
+        memory = self.config.memory
+        prior_mean = np.zeros(self.n_terms)
+        if self.config.gain is not None:
+            prior_mean[0] = 1.0  # the first gain term starts at 1 (documented in the README)
+        return RecursiveEstimator(
+            self.n_terms,
+            half_life=memory.half_life,
+            window=memory.window,
+            prior_sd=memory.prior_sd,
+            prior_mean=prior_mean,
+        )
+
+    def _bind(self, epoch: float) -> None:
+        self._epoch = epoch
+        self._basis = self.config.basis.with_epoch(epoch)
+        self._gain = self.config.gain.with_epoch(epoch) if self.config.gain else None
+
+    def _covariates(self, time: float) -> tuple[dict[str, Array], list[str], bool]:
+        """Inputs the basis needs: (values, flags, missing). A stale input's last value is
+        used and flagged; one never seen makes the reading uncorrectable (QARTOD 9)."""
+        assert self._basis is not None
+        needed = self._basis.variables | (self._gain.variables if self._gain else frozenset())
+        values: dict[str, Array] = {}
+        flags: list[str] = []
+        for name in sorted(needed):
+            lookup = self._inputs.lookup(name, time)
+            if lookup.value is None:
+                return {}, [q.INPUT_STALE], True
+            if not lookup.fresh:
+                flags.append(q.INPUT_STALE)
+            values[name] = np.array([lookup.value])
+        return values, sorted(set(flags)), False
+
+    def _learn(
+        self, sample: Sample, t: float, phi: Array, psi: Array | None, *, stale: bool
+    ) -> tuple[bool, float | None, float | None]:
+        """Update the estimator if this sample teaches the baseline.
+
+        Returns (learned, check error, standardised residual). The check error is the
+        out-of-sample error of the correction at a reference check: the corrected value the
+        model would have published, minus the reference.
+        """
+        if stale:
+            return False, None, None  # a stale covariate would teach a wrong shape
+        target, row, check_error = self._row(sample, phi, psi)
+        if row is None:
+            return False, None, None
+        established = self._established()
+        weight = self._weight(target - self._estimator.predict(row))
+        innovation = self._estimator.update(row, target, weight, t)
+        if not established:
+            check_error = None  # an untrained model's error says nothing about the sensor
+        return True, check_error, _standardised(innovation)
+
+    def _row(
+        self, sample: Sample, phi: Array, psi: Array | None
+    ) -> tuple[float, Array | None, float | None]:
+        mode = self.learn.mode
+        if mode != "reference":
+            return sample.value - self.learn.nominal, phi, None
+        reference = self._inputs.lookup(self.learn.input, sample.time)
+        if reference.value is None or not reference.fresh:
+            return math.nan, None, None
+        ref = reference.value
+        if psi is None:
+            predicted = sample.value - self._estimator.predict(phi)
+            return sample.value - ref, phi, predicted - ref
+        theta = self._estimator.coefficients
+        gain = float(psi @ theta[: self._gain_size])
+        offset = float(phi @ theta[self._gain_size :])
+        predicted = (sample.value - offset) / gain if gain else math.nan
+        return sample.value, np.concatenate([psi * ref, phi]), predicted - ref
+
+    def _weight(self, residual: float) -> float:
+        """Envelope and Huber weights; both need a residual SD the model trusts."""
+        sd = self._estimator.residual_sd
+        if not (self._established() and math.isfinite(sd) and sd > 0):
+            return 1.0
+        weight = 1.0
+        if self.learn.mode == "envelope" and residual > self.learn.envelope_k * sd:
+            weight = self.learn.envelope_weight
+        if self.learn.robust and abs(residual) > self.learn.huber_k * sd:
+            weight *= self.learn.huber_k * sd / abs(residual)
+        return weight
+
+    def _established(self) -> bool:
+        return self._estimator.effective_n >= self._min_samples
+
+    def _rezero(self, time: float) -> None:
+        """Keep the learned shape but make the baseline zero now (sensor was adjusted)."""
+        if self._basis is None or "constant" not in self._basis.names:
+            self._estimator.reset()
+            return
+        t = time - (self._epoch or 0.0)
+        covariates, _, missing = self._covariates(time)
+        if missing:
+            self._estimator.reset()
+            return
+        phi = self._basis.evaluate(np.array([t]), covariates)[0]
+        index = self._gain_size + self._basis.names.index("constant")
+        full = np.zeros(self.n_terms)
+        full[self._gain_size :] = phi
+        self._estimator.shift(index, -self._estimator.predict(full))
+
+    # --- correcting ---------------------------------------------------------------------
+
+    def _correct(
+        self,
+        sample: Sample,
+        t: float,
+        phi: Array,
+        psi: Array | None,
+        covariates: dict[str, Array],
+        flags: list[str],
+        learned: bool,
+    ) -> Corrected:
+        assert self._basis is not None
+        estimator = self._estimator
+        theta = estimator.coefficients
+        offset_theta = theta[self._gain_size :]
+        baseline = float(phi @ offset_theta)
+        slope = self._basis.derivative(np.array([t]), covariates)[0]
+        drift_rate = float(slope @ offset_theta)
+        sd = estimator.residual_sd if math.isfinite(estimator.residual_sd) else math.nan
+        flags = list(flags)
+        if not self._established():
+            flags.append(q.LEARNING)
+        if sample.time - self._last_useful > self.learn.max_gap:
+            flags.append(q.EXTRAPOLATING)
+        if self._condition_number() > self.config.ill_conditioned_above:
+            flags.append(q.ILL_CONDITIONED)
+        gain = 1.0
+        if psi is None:
+            gradient = np.concatenate([np.zeros(self._gain_size), phi])
+            corrected = sample.value - baseline
+        else:
+            gain = float(psi @ theta[: self._gain_size])
+            corrected = (sample.value - baseline) / gain if gain != 0 else math.nan
+            # delta method: d corrected/d a = −corrected·ψ/g, d corrected/d θ = −φ/g
+            gradient = np.concatenate([corrected * psi, phi]) / gain
+        uncertainty = sd * math.sqrt(max(float(gradient @ estimator.covariance @ gradient), 0.0))
+        corrected = self._capped(sample.value, corrected, flags)
+        quality, code = q.summarise(flags)
+        return Corrected(
+            time=sample.time,
+            raw=sample.value,
+            corrected=corrected,
+            baseline=baseline,
+            uncertainty=uncertainty,
+            quality=quality,
+            quality_code=code,
+            flags=tuple(sorted(set(flags))),
+            gain=gain if psi is not None else None,
+            drift_rate=drift_rate,
+            learned=learned,
+            coefficients=theta.copy(),
+        )
+
+    def _condition_number(self) -> float:
+        """The estimator's condition number, refreshed every CONDITION_EVERY readings: it
+        needs an SVD, and collinearity builds up over many samples, not one."""
+        self._since_condition += 1
+        if self._since_condition >= CONDITION_EVERY or self._condition is None:
+            self._condition = self._estimator.condition_number()
+            self._since_condition = 0
+        return self._condition
+
+    def _capped(self, raw: float, corrected: float, flags: list[str]) -> float:
+        cap = self.config.cap
+        if cap is None or not math.isfinite(corrected):
+            return corrected
+        correction = raw - corrected
+        if abs(correction) <= cap:
+            return corrected
+        flags.append(q.CAPPED)
+        return raw - math.copysign(cap, correction)
+
+    def _uncorrectable(self, sample: Sample, flags: list[str]) -> Corrected:
+        quality, code = q.summarise(flags, missing=True)
+        return Corrected(
+            sample.time,
+            sample.value,
+            None,
+            None,
+            None,
+            quality,
+            code,
+            tuple(flags),
+            None,
+            None,
+            False,
+        )
+
+    def _track_means(self, time: float, covariates: dict[str, Array]) -> None:
+        """Running (exponentially weighted, time constant INPUT_MEAN_TAU) means of the
+        inputs, at which drift is judged: a compensated cross-sensitivity's daily swing is
+        the model working, not the sensor drifting."""
+        weight = 1.0
+        if self._means_time is not None:
+            weight = 1.0 - math.exp(-(time - self._means_time) / INPUT_MEAN_TAU)
+        self._means_time = time
+        for name, value in covariates.items():
+            previous = self._input_means.get(name, float(value[0]))
+            self._input_means[name] = previous + weight * (float(value[0]) - previous)
+
+    def _held_inputs(self, size: int) -> dict[str, Array]:
+        return {name: np.full(size, mean) for name, mean in self._input_means.items()}
+
+    def _drift_at_means(self, t: float) -> tuple[float, float]:
+        """Baseline and its d/dt now, with every input at its running mean."""
+        assert self._basis is not None
+        times = np.array([t])
+        theta = self._estimator.coefficients[self._gain_size :]
+        held = self._held_inputs(1)
+        drift = float(self._basis.evaluate(times, held)[0] @ theta)
+        rate = float(self._basis.derivative(times, held)[0] @ theta)
+        return drift, rate
+
+    def _forecaster(self) -> Callable[[Array], tuple[Array, Array]]:
+        """Predicted drift and its SD at future (absolute) times, inputs at their means."""
+        basis, estimator, start = self._basis, self._estimator, self._gain_size
+        epoch = self._epoch or 0.0
+        held_at = dict(self._input_means)
+
+        def predict(times: Array) -> tuple[Array, Array]:
+            assert basis is not None
+            held = {name: np.full(times.shape[0], mean) for name, mean in held_at.items()}
+            rows = basis.evaluate(times - epoch, held)
+            theta = estimator.coefficients[start:]
+            cov = estimator.covariance[start:, start:]
+            spread = np.maximum(np.einsum("ij,jk,ik->i", rows, cov, rows), 0.0)
+            return rows @ theta, estimator.residual_sd * np.sqrt(spread)
+
+        return predict
+
+    def _health(self, flags: list[str], phi: Array, psi: Array | None) -> list[str]:
+        problems = [flag for flag in flags if flag in (q.INPUT_STALE, q.ILL_CONDITIONED)]
+        if self._last_time - self._last_useful > self.learn.max_gap:
+            problems.append("no_useful_sample")
+        if self._wound_up(phi, psi):
+            problems.append("wind_up")
+        return problems
+
+    def _wound_up(self, phi: Array, psi: Array | None) -> bool:
+        """The data no longer pin the baseline down: its variance has grown back to a quarter
+        of what the prior alone allows (the prior itself bounds it, see the estimator)."""
+        if self._estimator.effective_n < self._min_samples:
+            return False  # still learning: that is the 'learning' flag, not wind-up
+        row = phi if psi is None else np.concatenate([psi, phi])
+        prior_only = float(np.sum((self._estimator.prior_sd * row) ** 2))
+        return self._estimator.variance(row) > 0.25 * prior_only
+
+    # --- state --------------------------------------------------------------------------
+
+    def to_state(self) -> dict[str, Any]:
+        return {
+            "version": STATE_VERSION,
+            "model": self.config.model_key(),
+            "epoch": self._epoch,
+            "last_time": self._last_time,
+            "last_useful": self._last_useful,
+            "estimator": self._estimator.to_state(),
+            "inputs": self._inputs.to_state(),
+            "alerts": self.alerts.to_state(),
+            "input_means": dict(self._input_means),
+            "means_time": self._means_time,
+        }
+
+    def load_state(self, state: Mapping[str, Any]) -> None:
+        """Restore from `to_state`; InputError if the state is for another model."""
+        if state.get("version") != STATE_VERSION or state.get("model") != self.config.model_key():
+            raise InputError("state was saved for a different model or version")
+        self._estimator = RecursiveEstimator.from_state(state["estimator"])
+        if state["epoch"] is not None:
+            self._bind(float(state["epoch"]))
+        self._last_time = float(state["last_time"])
+        self._last_useful = float(state["last_useful"])
+        self._inputs.load_state(state["inputs"])
+        self.alerts.load_state(state["alerts"])
+        self._input_means = {k: float(v) for k, v in state["input_means"].items()}
+        self._means_time = state["means_time"]
+
+
+def _standardised(innovation: Any) -> float | None:
+    z = getattr(innovation, "standardised", None)
+    return float(z) if z is not None and math.isfinite(z) else None

@@ -1,0 +1,58 @@
+"""The latest value of each named input (covariates and reference values) of a channel.
+
+Inputs arrive on their own topics (or as fields of the channel's own payload) at their own
+pace. A reading uses an input's latest value only if it is fresh: not older than the input's
+`max_age` at the reading's time (`max_age: 0s` means "taken at the same instant"). A value
+stamped later than the reading is not used for it either: the model must not see the future.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+
+@dataclass(frozen=True)
+class InputValue:
+    time: float
+    value: float
+
+
+@dataclass(frozen=True)
+class Lookup:
+    """What a reading gets for one input: the value to use, and whether it was fresh."""
+
+    value: float | None
+    fresh: bool
+
+
+class InputCache:
+    """Latest value per input name; bounded by the number of declared inputs."""
+
+    def __init__(self, max_ages: dict[str, float]) -> None:
+        self.max_ages = dict(max_ages)
+        self._latest: dict[str, InputValue] = {}
+
+    def put(self, name: str, time: float, value: float) -> None:
+        """Record a value unless a newer one is already known (redeliveries, reordering)."""
+        current = self._latest.get(name)
+        if current is None or time >= current.time:
+            self._latest[name] = InputValue(time, value)
+
+    def lookup(self, name: str, at: float) -> Lookup:
+        """The value of `name` for a reading at time `at`."""
+        latest = self._latest.get(name)
+        if latest is None:
+            return Lookup(None, False)
+        age = at - latest.time
+        return Lookup(latest.value, 0.0 <= age <= self.max_ages[name])
+
+    def to_state(self) -> dict[str, Any]:
+        return {name: [v.time, v.value] for name, v in self._latest.items()}
+
+    def load_state(self, state: dict[str, Any]) -> None:
+        self._latest = {
+            name: InputValue(float(t), float(v))
+            for name, (t, v) in state.items()
+            if name in self.max_ages
+        }
