@@ -258,21 +258,27 @@ def parse_rfc3339(text: str) -> float:
     if match is None:
         raise DecodeError("bad_time", f"time {_quote(text)} is not an RFC 3339 date-time; "
                           f"{_RFC3339_HINT}")
-    year, month, day, hour, minute, second = (int(g) for g in match.group(1, 2, 3, 4, 5, 6))
-    fraction, zulu, sign, off_hour, off_minute = match.group(7, 8, 9, 10, 11)
+    year, month, day, hour, minute, second, fraction, zulu, sign, off_hour, off_minute = (
+        match.groups())
     try:
-        days = _dt.date(year, month, day).toordinal() - _EPOCH_ORDINAL
+        days = _dt.date(int(year), int(month), int(day)).toordinal() - _EPOCH_ORDINAL
     except ValueError:
         raise DecodeError("bad_time", f"time {_quote(text)} names no calendar date; "
                           f"{_RFC3339_HINT}") from None
-    off_hour_n = off_minute_n = offset = 0
+    # Two-digit fields compare as strings: cheaper than int() and exact for "00".."99".
     if zulu is None:
-        off_hour_n, off_minute_n = int(off_hour), int(off_minute)
-        offset = (off_hour_n * 3600 + off_minute_n * 60) * (-1 if sign == "-" else 1)
-    if hour > 23 or minute > 59 or second > 60 or off_hour_n > 23 or off_minute_n > 59:
-        raise DecodeError("bad_time", f"time {_quote(text)} has an hour, minute, second or "
-                          f"offset out of range; {_RFC3339_HINT}")
-    whole = days * 86400 + hour * 3600 + minute * 60 + second - offset
+        if off_hour > "23" or off_minute > "59":
+            raise DecodeError("bad_time", f"time {_quote(text)} has an offset out of range; "
+                              f"{_RFC3339_HINT}")
+        offset = int(off_hour) * 3600 + int(off_minute) * 60
+        if sign == "-":
+            offset = -offset
+    else:
+        offset = 0
+    if hour > "23" or minute > "59" or second > "60":
+        raise DecodeError("bad_time", f"time {_quote(text)} has an hour, minute or second out "
+                          f"of range; {_RFC3339_HINT}")
+    whole = days * 86400 + int(hour) * 3600 + int(minute) * 60 + int(second) - offset
     return whole + float(fraction) if fraction else float(whole)
 
 
@@ -395,11 +401,17 @@ class _JsonDecoder:
 
         fields: dict[str, float] = {}
         for key, item in record.items():
-            if (type(item) is float or type(item) is int) and key != time_field \
-                    and key != value_field:
+            # `x - x == 0.0` is the finiteness test without a call (inf - inf and NaN are NaN).
+            if type(item) is float:
+                if item - item == 0.0:
+                    fields[key] = item
+            elif type(item) is int:
                 number = _as_float(item)
-                if math.isfinite(number):
+                if number - number == 0.0:
                     fields[key] = number
+        if fields:  # cheaper than comparing every key with the two configured names
+            fields.pop(time_field, None)
+            fields.pop(value_field, None)
         if value is None and not fields:
             raise DecodeError("missing_value", f"no {value_field!r} and no other numeric field; "
                               f"{_JSON_HINT}")
