@@ -17,7 +17,8 @@ Three payload kinds:
   asks for one. ``"value": null`` reads as "no value" (like an absent value): allowed
   when a numeric field is present, ``missing_value`` otherwise. Time is epoch seconds,
   epoch milliseconds or an RFC 3339 string; absent means the arrival time. A batch is
-  decoded all or nothing, so a broken record never leaves half a batch behind.
+  decoded all or nothing, so a broken record never leaves half a batch behind; an empty
+  batch is ``missing_value``.
 - ``senml``: RFC 8428 JSON SenML. Base fields (bn, bt, bu, bv) apply to their own record
   and every later one until replaced (§4.1); name = bn + n, time = bt + t, value = bv + v,
   unit = u or else bu; a resolved time below 2**28 is relative to the arrival time
@@ -25,10 +26,11 @@ Three payload kinds:
   or only a sum are skipped, and so is a record with a ``bv`` but no ``v`` (the base value
   "is added to the value found in an entry", so it is no value of its own; reading it as
   one would feed phantom samples to the baseline fit). A pack without a single numeric
-  record is ``no_numeric_records``. Two deliberate relaxations: a record without any name
-  (no bn, no n) is accepted with ``name=None`` because the MQTT topic already names the
-  channel, and unknown fields are ignored unless they end in ``_`` ("must understand",
-  §4.4).
+  record is ``no_numeric_records``. Every record's resolved name is checked (§4.5.1), a
+  bver above 10 is refused, and so is an unknown field ending in ``_`` ("must
+  understand", §4.4); other unknown fields are ignored. One deliberate relaxation: a
+  record without any name (no bn, no n) is accepted with ``name=None``, because the MQTT
+  topic already names the channel. RFC 8428 section numbers here are cited from memory.
 - ``number``: a bare number as ASCII text (``b"21.5"``, ``b" 3e-2\\n"``); time = arrival.
 
 Reasons (the stable keys of `REASONS`, also the error counters' labels):
@@ -108,12 +110,14 @@ TIME_UNITS = ("auto", "s", "ms")
 #: In `time_unit: auto`, numbers above this are epoch milliseconds. Safe because the two
 #: ranges cannot meet in practice: 1e11 seconds after the epoch is the year 5138, and
 #: 1e11 milliseconds is 1973-03-03, so every seconds timestamp before 5138 is below it and
-#: every milliseconds timestamp after March 1973 is above it.
+#: every milliseconds timestamp after March 1973 is above it. Either mistake would land
+#: centuries away from the arrival time, so it is rejected by the time window, never
+#: silently misread.
 MS_THRESHOLD = 1e11
 
 #: RFC 8428 §4.5.3: resolved times below 2**28 s (1978-07-04) are relative to "now".
 SENML_RELATIVE_LIMIT = 2.0**28
-#: RFC 8428 §4.4: the SenML version this decoder understands (bver defaults to 10).
+#: RFC 8428 §4.1/§4.4: the SenML version this decoder understands (bver defaults to 10).
 SENML_VERSION = 10
 
 _QUOTE_CHARS = 60
@@ -194,6 +198,9 @@ def _iso(epoch: float) -> str:
     return moment.isoformat().replace("+00:00", "Z")
 
 
+_JSON = json.JSONDecoder()
+
+
 def _parse_json(payload: bytes, max_bytes: int) -> object:
     """Size check, UTF-8 check and JSON parse: the common front of json and senml."""
     if len(payload) > max_bytes:
@@ -227,9 +234,6 @@ def _parse_json(payload: bytes, max_bytes: int) -> object:
             f"JSON cannot be parsed ({type(exc).__name__}: {_quote(str(exc))}); "
             "send flat JSON with numbers of ordinary size",
         ) from None
-
-
-_JSON = json.JSONDecoder()
 
 
 # --------------------------------------------------------------------------- time
@@ -336,6 +340,7 @@ def _check_window(time: float, arrival: float, limits: DecodeLimits) -> None:
 # --------------------------------------------------------------------------- json
 
 
+_MISSING = object()  # "no time field", distinct from an explicit null
 _JSON_HINT = 'send an object such as {"time": ..., "value": 21.5} or an array of them'
 
 
@@ -418,13 +423,10 @@ class _JsonDecoder:
         return Reading(time, value, MappingProxyType(fields) if fields else _NO_FIELDS)
 
 
-_MISSING = object()
-
-
 # --------------------------------------------------------------------------- senml
 
 
-#: RFC 8428 §4.1/§4.2 JSON labels and the exact JSON types each may hold.
+#: RFC 8428 JSON labels (§4.1, §4.2) and the exact JSON type each may hold (§5).
 _NUMBER_TYPES = (int, float)
 _SENML_TYPES: dict[str, tuple[type, ...]] = {
     "bn": (str,), "bt": _NUMBER_TYPES, "bu": (str,), "bv": _NUMBER_TYPES,
@@ -452,13 +454,13 @@ def _check_senml_record(record: dict[str, object]) -> None:
                                   "not know it; drop it or send plain RFC 8428 SenML")
         elif type(item) not in allowed:
             raise DecodeError("malformed_senml", f"field {label!r} is {_describe(item)}; it "
-                              f"must be {_TYPE_WORDS[allowed]} (RFC 8428 §4.2)")
+                              f"must be {_TYPE_WORDS[allowed]} (RFC 8428 §5)")
     if "bver" in record:
         _check_version(record["bver"])
     if ("vs" in record or "vb" in record or "vd" in record) \
             and sum(label in record for label in _VALUE_LABELS) > 1:
         raise DecodeError("malformed_senml", "record holds more than one of v, vs, vb, vd; "
-                          "send one value per record (RFC 8428 §4.2)")
+                          "send one value per record")
 
 
 def _check_version(version: object) -> None:
@@ -488,7 +490,7 @@ def _senml_unit(unit: str | None) -> str | None:
         unit.encode("utf-8")
     except UnicodeEncodeError:  # a lone surrogate escape such as "\\ud800"
         raise DecodeError("malformed_senml", f"unit {_quote(unit)} is not valid Unicode text; "
-                          "send a unit such as 'Cel' (RFC 8428 §12.1)") from None
+                          "send a unit such as 'Cel'") from None
     return unit
 
 
