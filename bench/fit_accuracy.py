@@ -37,7 +37,6 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "tests"))
 
 from support import nist  # noqa: E402 - needs the path above
-
 from zeroline.commands.fit import design_from_table, load_basis_file  # noqa: E402
 from zeroline.csvdata import read_table  # noqa: E402
 from zeroline.lsq import fit_least_squares  # noqa: E402

@@ -184,7 +184,8 @@ def test_time_column_in_iso_8601_drives_t(tmp_path: Path, capsys: Any) -> None:
     """t is seconds since the first row's `time`: a line in t/1d recovers its slope per day."""
     rows = [f"2026-05-0{d}T00:00:00Z,{3.0 + 0.5 * (d - 1)}" for d in range(1, 6)]
     (tmp_path / "log.csv").write_text("time,y\n" + "\n".join(rows) + "\n")
-    (tmp_path / "basis.yaml").write_text("- constant\n- polynomial: {of: t, degree: 1, scale: 1d}\n")
+    basis = "- constant\n- polynomial: {of: t, degree: 1, scale: 1d}\n"
+    (tmp_path / "basis.yaml").write_text(basis)
     argv = ["fit", str(tmp_path / "log.csv"), "--y", "y", "--basis", str(tmp_path / "basis.yaml")]
     code, out, err = run_in_process([*argv, "--json"], capsys)
     assert (code, err) == (0, "")

@@ -31,8 +31,8 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from support import nist
 
+from support import nist
 from zeroline import cli
 
 TARGET_DIGITS = 10.0
