@@ -31,7 +31,9 @@ to its last complete line and logs how many bytes were discarded.
 Bound (policy `drop_oldest`): when the segment files together exceed `max_bytes`, whole
 segments are deleted oldest first and their undelivered lines are counted in
 `dropped_lines`. Dropping the oldest data keeps the most recent state of the site, which is
-what an operator looks at first after an outage.
+what an operator looks at first after an outage. A batch that is being sent while its
+segment is dropped counts as dropped only if it is then not acked, so every line ends up
+counted once: delivered or dropped.
 
 >>> import tempfile
 >>> with tempfile.TemporaryDirectory() as directory:
@@ -169,6 +171,8 @@ class Spool:
         self._buffer_since = 0.0
         self._sizes: dict[int, int] = {}  # segment number -> bytes on disk
         self._write_fd: int | None = None
+        self._in_flight: Batch | None = None  # the last batch peeked and not yet acked
+        self._in_flight_dropped = 0  # its lines whose segment was dropped meanwhile
         self._closed = False
         self._drop_log = RateLimitedLogger(_log)
         self.directory.mkdir(parents=True, exist_ok=True)
@@ -331,13 +335,16 @@ class Spool:
     def _drop_segment_locked(self, number: int) -> None:
         path = self._segment_path(number)
         offset = self._cursor.offset if number == self._cursor.segment else 0
-        lines = 0
+        undelivered = b""
         if number >= self._cursor.segment:
             with open(path, "rb") as handle:
                 handle.seek(offset)
-                lines = handle.read().count(b"\n")
+                undelivered = handle.read()
         path.unlink()
         del self._sizes[number]
+        in_flight = self._in_flight_bytes(number, offset, len(undelivered))
+        self._in_flight_dropped += undelivered[:in_flight].count(b"\n")
+        lines = undelivered[in_flight:].count(b"\n")
         self.dropped_lines += lines
         if number >= self._cursor.segment:
             self._cursor = Position(number + 1, 0)
@@ -350,12 +357,28 @@ class Spool:
                 f"({self.dropped_lines} in total so far)",
             )
 
+    def _in_flight_bytes(self, number: int, offset: int, available: int) -> int:
+        """How many bytes after `offset` in segment `number` belong to the peeked batch.
+
+        Those lines may be stored by the database at this very moment: they count as
+        dropped only if the batch is not acked (see `peek` and `ack`), so that every line
+        is counted exactly once, as delivered or as dropped.
+        """
+        batch = self._in_flight
+        if batch is None or not batch.start.segment <= number <= batch.end.segment:
+            return 0
+        end = batch.end.offset if batch.end.segment == number else offset + available
+        return max(0, min(available, end - offset))
+
     # -- reading -----------------------------------------------------------------------
 
     def peek(self, max_lines: int) -> Batch:
         """Return up to `max_lines` of the oldest unacked lines on disk (maybe none)."""
         with self._lock:
             self._check_open()
+            # A new peek means the previous batch was not delivered: settle its drops.
+            self.dropped_lines += self._in_flight_dropped
+            self._in_flight_dropped = 0
             lines: list[str] = []
             start = self._cursor
             position = start
@@ -366,7 +389,9 @@ class Spool:
                 position = Position(number, offset)
                 if len(lines) >= max_lines or offset < self._sizes[number]:
                     break
-            return Batch(lines, start, position)
+            batch = Batch(lines, start, position)
+            self._in_flight = batch if lines else None
+            return batch
 
     def _read_lines(self, number: int, offset: int, limit: int) -> tuple[list[str], int]:
         lines: list[str] = []
@@ -387,6 +412,9 @@ class Spool:
         """Mark `batch` as delivered: commit the cursor and delete finished segments."""
         with self._lock:
             self._check_open()
+            if batch is self._in_flight:
+                self._in_flight = None
+                self._in_flight_dropped = 0  # delivered after all: not dropped
             if batch.end <= self._cursor:
                 return  # its data was dropped by the bound meanwhile, or acked already
             cursor = batch.end
@@ -439,6 +467,8 @@ class Spool:
             if self._closed:
                 return
             self._flush_locked()
+            self.dropped_lines += self._in_flight_dropped  # never acked: not delivered
+            self._in_flight_dropped = 0
             if self._write_fd is not None:
                 os.close(self._write_fd)
                 self._write_fd = None
