@@ -43,10 +43,12 @@ zeroline_reading,channel=no2,site=north\\ 1 corrected=11,quality=1i,raw=12.5 170
 
 from __future__ import annotations
 
+import functools
 import logging
 import math
 import os
 import random
+import re
 import threading
 import time
 from collections.abc import Callable, Iterable, Mapping
@@ -124,18 +126,27 @@ def validate_point(point: Point, now_ns: int) -> None:
 def _check_name(name: str, what: str, *, key: bool) -> None:
     if not isinstance(name, str) or not name:
         raise InputError(f"{what} is empty; give a non-empty name")
-    bad = next((c for c in name if ord(c) < 32 or ord(c) == 127), None)
-    if bad is not None:
-        raise InputError(f"{what} contains the control character {bad!r}; "
-                         "use printable characters only")
-    if "\\" in name:
-        raise InputError(f"{what} contains a backslash, which line protocol cannot carry "
-                         "unambiguously; use '/' or '_' instead")
+    problem = _name_problem(name, key)
+    if problem is not None:
+        raise InputError(f"{what} {problem}")
+
+
+_UNSAFE_CHARACTER = re.compile(r"[\x00-\x1f\x7f\\]")
+
+
+@functools.lru_cache(maxsize=4096)  # the same few names recur in every point
+def _name_problem(name: str, key: bool) -> str | None:
+    unsafe = _UNSAFE_CHARACTER.search(name)
+    if unsafe is not None and unsafe.group() == "\\":
+        return ("contains a backslash, which line protocol cannot carry unambiguously; "
+                "use '/' or '_' instead")
+    if unsafe is not None:
+        return f"contains the control character {unsafe.group()!r}; use printable characters only"
     if key and name.startswith("_"):
-        raise InputError(f"{what} starts with '_', which InfluxDB reserves; "
-                         "start it with a letter")
+        return "starts with '_', which InfluxDB reserves; start it with a letter"
     if key and name in _RESERVED_KEYS:
-        raise InputError(f"{what} is a reserved key; choose another name")
+        return "is a reserved key; choose another name"
+    return None
 
 
 def _check_field_value(value: object, what: str) -> None:
