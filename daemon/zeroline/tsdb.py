@@ -470,6 +470,7 @@ class TimeseriesSink:
         self._closing = threading.Event()
         self._stop_now = threading.Event()
         self._failures_in_a_row = 0
+        self._limit = config.batch_size  # smaller only while isolating a refused point
         self._sender = threading.Thread(target=self._send_loop, name="tsdb-sender", daemon=True)
         self._flusher = threading.Thread(target=self._flush_loop, name="tsdb-flusher",
                                          daemon=True)
@@ -495,7 +496,7 @@ class TimeseriesSink:
         try:
             self._spool.append(lines)
         except OSError as error:
-            self._counts.add("spool_errors", len(lines))
+            self._counts.add("spool_errors")
             self._problems.warning("spool write", f"time-series spool write failed "
                                    f"({error.strerror}); points are kept in memory for now")
         self._counts.add("points_submitted", len(lines))
@@ -534,7 +535,11 @@ class TimeseriesSink:
         if self._sender.is_alive():
             _log.warning("time-series sender did not stop; its unacked batch will be resent")
         else:
-            self._spool.close()
+            try:
+                self._spool.close()
+            except OSError as error:
+                _log.warning("time-series spool could not be flushed at close (%s); "
+                             "the points still in memory are lost", error.strerror)
         self._writer.close()
 
     # -- background threads --------------------------------------------------------------
@@ -556,35 +561,39 @@ class TimeseriesSink:
                                    f"({error.strerror}) while closing")
 
     def _send_loop(self) -> None:
-        limit = self.config.batch_size
         while not self._stop_now.is_set():
-            batch = self._spool.peek(limit)
-            if not batch.lines:
-                if self._closing.is_set():
-                    return
-                self._wake.wait(self.config.flush_interval_s)
-                self._wake.clear()
-                continue
             try:
-                self._writer.write(batch.lines)
-            except WriteError as failure:
-                if not failure.permanent:
-                    if not self._back_off(failure):
-                        return
-                elif len(batch.lines) > 1:
-                    limit = max(1, len(batch.lines) // 2)  # bisect down to the refused line
-                else:
-                    self._drop_rejected(batch, failure)
-                    limit = self.config.batch_size
-                continue
+                if not self._send_next():
+                    return
             except Exception:  # a bug, not an outage: keep the thread alive, say where
                 _log.exception("time-series sender failed unexpectedly; retrying")
-                if not self._back_off(WriteError("internal error", "see traceback")):
+                if not self._back_off(WriteError("internal error", "see the traceback")):
                     return
-                continue
-            self._spool.ack(batch)
-            self._on_written(len(batch.lines))
-            limit = self.config.batch_size
+
+    def _send_next(self) -> bool:
+        """Try to deliver the oldest batch once; False when the sender should stop."""
+        batch = self._spool.peek(self._limit)
+        if not batch.lines:
+            if self._closing.is_set():
+                return False
+            self._wake.wait(self.config.flush_interval_s)
+            self._wake.clear()
+            return True
+        try:
+            self._writer.write(batch.lines)
+        except WriteError as failure:
+            if not failure.permanent:
+                return self._back_off(failure)
+            if len(batch.lines) > 1:
+                self._limit = max(1, len(batch.lines) // 2)  # bisect down to the bad line
+            else:
+                self._drop_rejected(batch, failure)
+                self._limit = self.config.batch_size
+            return True
+        self._spool.ack(batch)
+        self._on_written(len(batch.lines))
+        self._limit = self.config.batch_size
+        return True
 
     def _on_written(self, count: int) -> None:
         self._counts.add("points_written", count)
