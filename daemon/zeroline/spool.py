@@ -91,7 +91,9 @@ class Batch:
 class RateLimitedLogger:
     """Log a message at most once per `interval_s` for each cause key, counting the rest.
 
-    >>> limiter = RateLimitedLogger(logging.getLogger("doctest"), interval_s=60.0)
+    >>> quiet = logging.getLogger("doctest.quiet")
+    >>> quiet.addHandler(logging.NullHandler())
+    >>> limiter = RateLimitedLogger(quiet, interval_s=60.0)
     >>> limiter.warning("disk", "spool disk full")
     True
     >>> limiter.warning("disk", "spool disk full")
