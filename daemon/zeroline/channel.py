@@ -223,15 +223,22 @@ class Channel:
         return result, events
 
     def control(self, event: ControlEvent) -> list[Any]:
-        """Apply a technician's action so it does not read as drift; returns alert clears."""
-        if event.event == "replaced" or event.mode == "reset":
+        """Apply a technician's action so it does not read as drift; returns alert clears.
+
+        rezero keeps the learned shape (see `_rezero`); reset forgets every sample; a
+        replaced sensor also starts a new epoch (its settling terms start again) and new
+        input means. Readings older than the last one stay refused either way.
+        """
+        if event.event == "replaced":
+            self._estimator = self._new_estimator()
+            self._squared = self._new_squared_weights()
+            self._epoch, self._basis, self._gain = self.config.epoch, None, None
+            if self._epoch is not None:
+                self._bind(self._epoch)
+            self._input_means, self._input_stage1, self._means_time = {}, {}, None
+            self._last_useful = -math.inf
+        elif event.mode == "reset":
             self._reset_estimators()
-            if event.event == "replaced":
-                self._epoch = self.config.epoch
-                self._basis = self._gain = None
-                if self._epoch is not None:
-                    self._bind(self._epoch)
-                self._last_time = -math.inf
             self._last_useful = -math.inf
         else:
             self._rezero(event.time)
@@ -396,8 +403,8 @@ class Channel:
         flags = list(flags)
         if not self._established():
             flags.append(q.LEARNING)
-        if self._condition_number() > self.config.ill_conditioned_above:
-            flags.append(q.ILL_CONDITIONED)
+        if self._established() and self._condition_number() > self.config.ill_conditioned_above:
+            flags.append(q.ILL_CONDITIONED)  # while learning, too few samples is expected
         gain = 1.0
         if psi is None:
             gradient = np.concatenate([np.zeros(self._gain_size), phi])

@@ -238,8 +238,9 @@ class Spool:
             return Position(min(self._sizes, default=0), 0)
         except (ValueError, KeyError, TypeError) as error:
             # Cannot happen with atomic replacement; if it does, resend rather than lose.
-            _log.warning("spool cursor %s is unreadable (%s); starting from the oldest data",
-                         path, error)
+            _log.warning(
+                "spool cursor %s is unreadable (%s); starting from the oldest data", path, error
+            )
             return Position(min(self._sizes, default=0), 0)
 
     # -- writing -----------------------------------------------------------------------
@@ -249,8 +250,10 @@ class Spool:
         new = list(lines)
         for line in new:
             if "\n" in line or "\r" in line:
-                raise InputError(f"spool line contains a line break: {line[:60]!r}; "
-                                 "escape or remove it before spooling")
+                raise InputError(
+                    f"spool line contains a line break: {line[:60]!r}; "
+                    "escape or remove it before spooling"
+                )
         with self._lock:
             self._check_open()
             if not self._buffer:
@@ -300,8 +303,7 @@ class Spool:
         try:
             os.ftruncate(fd, self._sizes[number])
         except OSError:
-            _log.warning("spool segment %d could not be truncated after a failed write",
-                         number)
+            _log.warning("spool segment %d could not be truncated after a failed write", number)
         self._buffer = pending + self._buffer
         excess = len(self._buffer) - _MAX_BUFFER_FLUSHES * self.flush_lines
         if excess > 0:  # the disk keeps failing: bound memory, oldest first as on disk

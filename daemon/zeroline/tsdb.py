@@ -107,13 +107,16 @@ def validate_point(point: Point, now_ns: int) -> None:
     where = f"point {point.measurement!r}"
     _check_name(point.measurement, f"{where}: measurement name", key=False)
     if point.measurement.startswith("#"):
-        raise InputError(f"{where}: a measurement starting with '#' is read as a comment; "
-                         "start it with a letter")
+        raise InputError(
+            f"{where}: a measurement starting with '#' is read as a comment; start it with a letter"
+        )
     for key, value in point.tags.items():
         _check_name(key, f"{where}: tag key {key!r}", key=True)
         if not isinstance(value, str) or not value:
-            raise InputError(f"{where}: tag {key!r} has value {value!r}; "
-                             "tags need a non-empty text value (leave the tag out instead)")
+            raise InputError(
+                f"{where}: tag {key!r} has value {value!r}; "
+                "tags need a non-empty text value (leave the tag out instead)"
+            )
         _check_name(value, f"{where}: tag {key!r} value {value!r}", key=False)
     if not point.fields:
         raise InputError(f"{where}: has no fields; a point needs at least one numeric field")
@@ -138,8 +141,10 @@ _UNSAFE_CHARACTER = re.compile(r"[\x00-\x1f\x7f\\]")
 def _name_problem(name: str, key: bool) -> str | None:
     unsafe = _UNSAFE_CHARACTER.search(name)
     if unsafe is not None and unsafe.group() == "\\":
-        return ("contains a backslash, which line protocol cannot carry unambiguously; "
-                "use '/' or '_' instead")
+        return (
+            "contains a backslash, which line protocol cannot carry unambiguously; "
+            "use '/' or '_' instead"
+        )
     if unsafe is not None:
         return f"contains the control character {unsafe.group()!r}; use printable characters only"
     if key and name.startswith("_"):
@@ -154,8 +159,7 @@ def _check_field_value(value: object, what: str) -> None:
         raise InputError(f"{what} is a boolean; write 1 or 0 as an integer")
     if isinstance(value, int):
         if not -_INT64_MAX - 1 <= value <= _INT64_MAX:
-            raise InputError(f"{what} = {value} does not fit a 64-bit integer; "
-                             "write it as a float")
+            raise InputError(f"{what} = {value} does not fit a 64-bit integer; write it as a float")
         return
     if isinstance(value, float):
         if math.isnan(value):
@@ -163,21 +167,28 @@ def _check_field_value(value: object, what: str) -> None:
         if math.isinf(value):
             raise InputError(f"{what} is infinite; only finite numbers can be stored")
         return
-    raise InputError(f"{what} is {type(value).__name__} {value!r}; fields must be numbers "
-                     "(VictoriaMetrics stores text fields as 0): put text in a tag")
+    raise InputError(
+        f"{what} is {type(value).__name__} {value!r}; fields must be numbers "
+        "(VictoriaMetrics stores text fields as 0): put text in a tag"
+    )
 
 
 def _check_time(time_ns: object, now_ns: int, where: str) -> None:
     if isinstance(time_ns, bool) or not isinstance(time_ns, int):
-        raise InputError(f"{where}: time {time_ns!r} is not an integer number of nanoseconds "
-                         "since 1970-01-01 UTC")
+        raise InputError(
+            f"{where}: time {time_ns!r} is not an integer number of nanoseconds "
+            "since 1970-01-01 UTC"
+        )
     if time_ns < 0:
-        raise InputError(f"{where}: time {time_ns} ns is before 1970-01-01 UTC; "
-                         "check the logger's clock")
+        raise InputError(
+            f"{where}: time {time_ns} ns is before 1970-01-01 UTC; check the logger's clock"
+        )
     if time_ns > now_ns + _FUTURE_LIMIT_NS:
         ahead_h = (time_ns - now_ns) / 3.6e12
-        raise InputError(f"{where}: time is {ahead_h:.1f} h in the future (more than 24 h "
-                         "would be silently dropped by the database); check the logger's clock")
+        raise InputError(
+            f"{where}: time is {ahead_h:.1f} h in the future (more than 24 h "
+            "would be silently dropped by the database); check the logger's clock"
+        )
 
 
 # -- line protocol -------------------------------------------------------------------------
@@ -233,8 +244,9 @@ def _as_float(value: float | None) -> float | None:
 def _channel_tags(channel: str, labels: Mapping[str, str], **fixed: str) -> dict[str, str]:
     clash = sorted(set(labels) & ({"channel"} | set(fixed)))
     if clash:
-        raise InputError(f"channel {channel!r}: label {clash[0]!r} is set by zeroline itself; "
-                         "rename the label")
+        raise InputError(
+            f"channel {channel!r}: label {clash[0]!r} is set by zeroline itself; rename the label"
+        )
     return {**labels, "channel": channel, **fixed}
 
 
@@ -252,16 +264,19 @@ def reading_point(
 ) -> Point:
     """A corrected reading; `quality` is a QARTOD code (see QARTOD_BY_QUALITY_FLAG)."""
     if quality not in QARTOD_CODES:
-        raise InputError(f"channel {channel!r}: quality {quality!r} is not a QARTOD code; "
-                         "use 1, 2, 3, 4 or 9")
-    fields = _present({
-        "raw": _as_float(raw),
-        "corrected": _as_float(corrected),
-        "baseline": _as_float(baseline),
-        "uncertainty": _as_float(uncertainty),
-        "drift_rate": _as_float(drift_rate),
-        "quality": int(quality),
-    })
+        raise InputError(
+            f"channel {channel!r}: quality {quality!r} is not a QARTOD code; use 1, 2, 3, 4 or 9"
+        )
+    fields = _present(
+        {
+            "raw": _as_float(raw),
+            "corrected": _as_float(corrected),
+            "baseline": _as_float(baseline),
+            "uncertainty": _as_float(uncertainty),
+            "drift_rate": _as_float(drift_rate),
+            "quality": int(quality),
+        }
+    )
     return Point(READING, _channel_tags(channel, labels or {}), fields, time_ns)
 
 
@@ -278,14 +293,11 @@ def alert_point(
 ) -> Point:
     """An alert raise (`active=True`) or clear, for one channel and rule."""
     tags = _channel_tags(channel, labels or {}, rule=rule, severity=severity)
-    fields = _present({"active": int(active), "value": _as_float(value),
-                       "limit": _as_float(limit)})
+    fields = _present({"active": int(active), "value": _as_float(value), "limit": _as_float(limit)})
     return Point(ALERT, tags, fields, time_ns)
 
 
-def health_point(
-    client_id: str, time_ns: int, counters: Mapping[str, float | int | None]
-) -> Point:
+def health_point(client_id: str, time_ns: int, counters: Mapping[str, float | int | None]) -> Point:
     """The daemon's own health: counters such as readings_in, queue_depth, spool_bytes.
 
     Integers stay integers and floats stay floats; keep each counter's type stable.
@@ -315,17 +327,23 @@ class TimeseriesConfig:
 
     def __post_init__(self) -> None:
         if not self.url.startswith(("http://", "https://")):
-            raise ConfigError(f"timeseries.url: {self.url!r} is not an http(s) URL; "
-                              "write e.g. http://127.0.0.1:8086")
+            raise ConfigError(
+                f"timeseries.url: {self.url!r} is not an http(s) URL; "
+                "write e.g. http://127.0.0.1:8086"
+            )
         for name in ("org", "bucket"):
             if not getattr(self, name):
                 raise ConfigError(f"timeseries.{name}: is empty; give the InfluxDB {name}")
         if not 1 <= self.batch_size <= 100_000:
-            raise ConfigError(f"timeseries.batch_size: {self.batch_size} is out of range; "
-                              "use 1 to 100000 points per request")
+            raise ConfigError(
+                f"timeseries.batch_size: {self.batch_size} is out of range; "
+                "use 1 to 100000 points per request"
+            )
         if self.spool_max_bytes < 64 * 1024:
-            raise ConfigError(f"timeseries.spool_max_bytes: {self.spool_max_bytes} is too "
-                              "small; use at least 65536 bytes")
+            raise ConfigError(
+                f"timeseries.spool_max_bytes: {self.spool_max_bytes} is too "
+                "small; use at least 65536 bytes"
+            )
         for name in ("flush_interval_s", "request_timeout_s", "retry_initial_s"):
             if not getattr(self, name) > 0:
                 raise ConfigError(f"timeseries.{name}: must be a positive number of seconds")
@@ -339,11 +357,14 @@ def load_token(config: TimeseriesConfig) -> str | None:
         try:
             token = Path(config.token_file).read_text(encoding="utf-8").strip()
         except OSError as error:
-            raise ConfigError(f"timeseries.token_file: cannot read {config.token_file} "
-                              f"({error.strerror}); check the path and its permissions") from None
+            raise ConfigError(
+                f"timeseries.token_file: cannot read {config.token_file} "
+                f"({error.strerror}); check the path and its permissions"
+            ) from None
         if not token:
-            raise ConfigError(f"timeseries.token_file: {config.token_file} is empty; "
-                              "put the API token in it")
+            raise ConfigError(
+                f"timeseries.token_file: {config.token_file} is empty; put the API token in it"
+            )
         return token
     token = os.environ.get(TOKEN_ENV, "").strip()
     return token or None
@@ -402,20 +423,25 @@ class InfluxWriter:
 
         try:
             # The default write precision is nanoseconds, as to_line_protocol writes.
-            self._write_api.write(bucket=self._config.bucket, org=self._config.org,
-                                  record=lines)
+            self._write_api.write(bucket=self._config.bucket, org=self._config.org, record=lines)
         except ApiException as error:
             status = int(error.status or 0)
-            raise WriteError(f"HTTP {status}", f"{error.reason} from {self._config.url}",
-                              permanent=status in _PERMANENT_STATUSES) from None
+            raise WriteError(
+                f"HTTP {status}",
+                f"{error.reason} from {self._config.url}",
+                permanent=status in _PERMANENT_STATUSES,
+            ) from None
         except InfluxDBError as error:
             raise WriteError("server error", f"{error.message} from {self._config.url}") from None
         except urllib3.exceptions.NewConnectionError:
-            raise WriteError("cannot connect", f"{self._config.url} refused or unreachable"
-                              ) from None
+            raise WriteError(
+                "cannot connect", f"{self._config.url} refused or unreachable"
+            ) from None
         except (urllib3.exceptions.TimeoutError, TimeoutError):
-            raise WriteError("timeout", f"no answer from {self._config.url} within "
-                              f"{self._config.request_timeout_s} s") from None
+            raise WriteError(
+                "timeout",
+                f"no answer from {self._config.url} within {self._config.request_timeout_s} s",
+            ) from None
         except (urllib3.exceptions.HTTPError, OSError) as error:
             raise WriteError(type(error).__name__, f"talking to {self._config.url}") from None
 
@@ -460,8 +486,9 @@ class TimeseriesSink:
     ) -> None:
         self.config = config
         self._writer = writer if writer is not None else InfluxWriter(config, load_token(config))
-        self._spool = Spool(config.spool_dir, config.spool_max_bytes,
-                            flush_interval_s=config.flush_interval_s)
+        self._spool = Spool(
+            config.spool_dir, config.spool_max_bytes, flush_interval_s=config.flush_interval_s
+        )
         self._clock_ns = clock_ns
         self._counts = _Counters()
         self._problems = RateLimitedLogger(_log)
@@ -472,8 +499,7 @@ class TimeseriesSink:
         self._failures_in_a_row = 0
         self._limit = config.batch_size  # smaller only while isolating a refused point
         self._sender = threading.Thread(target=self._send_loop, name="tsdb-sender", daemon=True)
-        self._flusher = threading.Thread(target=self._flush_loop, name="tsdb-flusher",
-                                         daemon=True)
+        self._flusher = threading.Thread(target=self._flush_loop, name="tsdb-flusher", daemon=True)
         self._sender.start()
         self._flusher.start()
 
@@ -497,8 +523,11 @@ class TimeseriesSink:
             self._spool.append(lines)
         except OSError as error:
             self._counts.add("spool_errors")
-            self._problems.warning("spool write", f"time-series spool write failed "
-                                   f"({error.strerror}); points are kept in memory for now")
+            self._problems.warning(
+                "spool write",
+                f"time-series spool write failed "
+                f"({error.strerror}); points are kept in memory for now",
+            )
         self._counts.add("points_submitted", len(lines))
         self._wake.set()
         return len(lines)
@@ -538,8 +567,11 @@ class TimeseriesSink:
             try:
                 self._spool.close()
             except OSError as error:
-                _log.warning("time-series spool could not be flushed at close (%s); "
-                             "the points still in memory are lost", error.strerror)
+                _log.warning(
+                    "time-series spool could not be flushed at close (%s); "
+                    "the points still in memory are lost",
+                    error.strerror,
+                )
         self._writer.close()
 
     # -- background threads --------------------------------------------------------------
@@ -550,15 +582,17 @@ class TimeseriesSink:
                 if self._spool.flush_if_due():
                     self._wake.set()
             except OSError as error:
-                self._problems.warning("spool write", f"time-series spool flush failed "
-                                       f"({error.strerror}); will retry")
+                self._problems.warning(
+                    "spool write", f"time-series spool flush failed ({error.strerror}); will retry"
+                )
 
     def _flush_spool(self) -> None:
         try:
             self._spool.flush()
         except OSError as error:
-            self._problems.warning("spool write", f"time-series spool flush failed "
-                                   f"({error.strerror}) while closing")
+            self._problems.warning(
+                "spool write", f"time-series spool flush failed ({error.strerror}) while closing"
+            )
 
     def _send_loop(self) -> None:
         while not self._stop_now.is_set():
@@ -598,24 +632,30 @@ class TimeseriesSink:
     def _on_written(self, count: int) -> None:
         self._counts.add("points_written", count)
         if self._failures_in_a_row:
-            _log.info("time-series writes to %s work again after %d failed attempts",
-                      self.config.url, self._failures_in_a_row)
+            _log.info(
+                "time-series writes to %s work again after %d failed attempts",
+                self.config.url,
+                self._failures_in_a_row,
+            )
             self._failures_in_a_row = 0
 
     def _drop_rejected(self, batch: Batch, failure: WriteError) -> None:
         """Drop one point the database refuses for good, so it cannot stall the queue."""
         self._spool.ack(batch)
         self._counts.add("points_rejected", len(batch.lines))
-        self._problems.warning(f"rejected {failure.cause}",
-                               f"time-series database refused a point ({failure}); dropped "
-                               f"it: {batch.lines[0][:200]}")
+        self._problems.warning(
+            f"rejected {failure.cause}",
+            f"time-series database refused a point ({failure}); dropped it: {batch.lines[0][:200]}",
+        )
 
     def _back_off(self, failure: WriteError) -> bool:
         """Count and log `failure`, wait before the retry; False when the sink should stop."""
         self._counts.add("write_failures")
         self._failures_in_a_row += 1
-        delay = min(self.config.retry_max_s,
-                    self.config.retry_initial_s * 2.0 ** min(self._failures_in_a_row - 1, 30))
+        delay = min(
+            self.config.retry_max_s,
+            self.config.retry_initial_s * 2.0 ** min(self._failures_in_a_row - 1, 30),
+        )
         delay *= self._random.uniform(0.8, 1.0)  # so a fleet of gateways does not retry in step
         self._problems.warning(
             failure.cause,
