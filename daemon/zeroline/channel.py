@@ -25,12 +25,14 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
+from statistics import NormalDist
 from typing import Any
 
 import numpy as np
 import numpy.typing as npt
 
 from zeroline import quality as q
+from zeroline.alerts import Crossing, crossing_time
 from zeroline.basis import Basis
 from zeroline.channel_alerts import ChannelAlerts
 from zeroline.config import ChannelConfig
@@ -42,6 +44,8 @@ Array = npt.NDArray[np.float64]
 STATE_VERSION = 1
 CONTROL_EVENTS = ("recalibrated", "cleaned", "replaced")
 CONDITION_EVERY = 32
+FORECAST_POINTS = 200
+RATE_Z = 2.0  # a drift rate counts once it is this many standard uncertainties beyond zero
 INPUT_MEAN_TAU = 86400.0  # time constant of the input means that drift is judged at
 SQUARED_PRIOR_SD = 1e12  # the w² factor carries data only; the prior is added separately
 
@@ -349,15 +353,17 @@ class Channel:
             prior_sd=SQUARED_PRIOR_SD,
         )
 
-    def _baseline_variance(self, gradient: Array) -> float:
-        """Var of gradient·θ̂ / σ², the sandwich form gᵀP·(FᵀW²F + prior)·Pg.
+    def _baseline_variances(self, gradients: Array) -> Array:
+        """Var(gθ̂)/σ² for each row g of `gradients`: the sandwich gᵀP·(FᵀW²F + prior)·Pg.
 
-        The prior enters as in the estimate (once, with weight 1): the bound by the prior's
-        variance is kept."""
-        covariance = self._estimator.covariance
-        pg = covariance @ gradient
-        prior = float(np.sum((pg / self._estimator.prior_sd) ** 2))
-        return self._squared.information_form(pg) + prior * self._estimator.prior_weight
+        The prior enters as in the estimate (once, at its current weight), so the bound by
+        the prior's variance is kept."""
+        estimator = self._estimator
+        pg = gradients @ estimator.covariance
+        prior = np.diag(estimator.prior_weight / estimator.prior_sd**2)
+        middle = self._squared.information_matrix() + prior
+        variances: Array = np.einsum("ij,jk,ik->i", pg, middle, pg)
+        return variances
 
     def _established(self) -> bool:
         return self._estimator.effective_n >= self._min_samples
@@ -414,7 +420,8 @@ class Channel:
             corrected = (sample.value - baseline) / gain if gain != 0 else math.nan
             # delta method: d corrected/d a = −corrected·ψ/g, d corrected/d θ = −φ/g
             gradient = np.concatenate([corrected * psi, phi]) / gain
-        uncertainty = sd * math.sqrt(max(self._baseline_variance(gradient), 0.0))
+        variance = float(self._baseline_variances(gradient[None, :])[0])
+        uncertainty = sd * math.sqrt(max(variance, 0.0))
         corrected = self._capped(sample.value, corrected, flags)
         quality, code = q.summarise(flags)
         return Corrected(
@@ -488,31 +495,60 @@ class Channel:
         return {name: np.full(size, mean) for name, mean in self._input_means.items()}
 
     def _drift_at_means(self, t: float) -> tuple[float, float]:
-        """Baseline and its d/dt now, with every input at its running mean."""
+        """Drift and drift rate now, with every input at its running mean.
+
+        The rate is reported as its conservative magnitude |rate| − RATE_Z·u(rate) (zero if
+        that is negative), keeping its sign: a rate estimate is much noisier than the drift
+        itself, above all soon after learning starts, and a rate alert should mean the
+        drift is significantly that fast.
+        """
         assert self._basis is not None
         times = np.array([t])
         theta = self._estimator.coefficients[self._gain_size :]
         held = self._held_inputs(1)
         drift = float(self._basis.evaluate(times, held)[0] @ theta)
-        rate = float(self._basis.derivative(times, held)[0] @ theta)
-        return drift, rate
+        slope = self._basis.derivative(times, held)[0]
+        rate = float(slope @ theta)
+        full = np.zeros((1, self.n_terms))
+        full[0, self._gain_size :] = slope
+        spread = self._estimator.residual_sd * math.sqrt(
+            max(float(self._baseline_variances(full)[0]), 0.0)
+        )
+        if not math.isfinite(spread):
+            return drift, 0.0
+        return drift, math.copysign(max(0.0, abs(rate) - RATE_Z * spread), rate)
 
     def _forecaster(self) -> Callable[[Array], tuple[Array, Array]]:
         """Predicted drift and its SD at future (absolute) times, inputs at their means."""
-        basis, estimator, start = self._basis, self._estimator, self._gain_size
+        basis, start = self._basis, self._gain_size
         epoch = self._epoch or 0.0
         held_at = dict(self._input_means)
+        theta = self._estimator.coefficients[start:]
+        sd = self._estimator.residual_sd
 
         def predict(times: Array) -> tuple[Array, Array]:
             assert basis is not None
             held = {name: np.full(times.shape[0], mean) for name, mean in held_at.items()}
             rows = basis.evaluate(times - epoch, held)
-            theta = estimator.coefficients[start:]
-            cov = estimator.covariance[start:, start:]
-            spread = np.maximum(np.einsum("ij,jk,ik->i", rows, cov, rows), 0.0)
-            return rows @ theta, estimator.residual_sd * np.sqrt(spread)
+            full = np.zeros((rows.shape[0], self.n_terms))
+            full[:, start:] = rows
+            spread = np.maximum(self._baseline_variances(full), 0.0)
+            return rows @ theta, sd * np.sqrt(spread)
 
         return predict
+
+    def forecast(self, horizon: float, confidence: float = 0.95) -> Crossing | None:
+        """When the drift (inputs at their means) is predicted to reach ±drift_limit within
+        `horizon` seconds of the last reading, with a `confidence` interval; None if not."""
+        limit = self.config.alerts.drift_limit
+        if limit is None or self._basis is None or not math.isfinite(self._last_time):
+            return None
+        times = np.linspace(self._last_time, self._last_time + horizon, FORECAST_POINTS)
+        mean, spread = self._forecaster()(times)
+        if not (np.all(np.isfinite(mean)) and np.all(np.isfinite(spread))):
+            return None
+        z = NormalDist().inv_cdf(0.5 + confidence / 2)
+        return crossing_time(times, mean, spread, limit, z)
 
     def _health(self, flags: list[str], phi: Array, psi: Array | None) -> list[str]:
         problems = [flag for flag in flags if flag in (q.INPUT_STALE, q.ILL_CONDITIONED)]
