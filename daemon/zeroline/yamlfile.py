@@ -3,7 +3,10 @@
 Config errors must read `file:line: key.path: problem; what would be right`, so the loader
 keeps, for every key path (`channels[0].learn.mode`), the line it was written on. Only the
 safe YAML subset is built (no Python tags), and a key given twice in one mapping is an error
-rather than the silent "last one wins" of plain `yaml.safe_load`.
+rather than the silent "last one wins" of plain `yaml.safe_load`. Numbers in exponent
+notation without a dot (`1e8`, `2e-3`) are numbers, as in YAML 1.2, not the strings YAML 1.1
+makes of them. An alias that contains itself, or aliases that expand past `MAX_NODES`, are
+errors rather than a hang.
 """
 
 from __future__ import annotations
@@ -16,6 +19,21 @@ from typing import Any
 import yaml
 
 from zeroline.errors import ConfigError
+
+#: More nodes than any real config has; stops "billion laughs" alias expansion.
+MAX_NODES = 100_000
+_MERGE_TAG = "tag:yaml.org,2002:merge"
+
+
+class _Loader(yaml.SafeLoader):
+    """The safe loader, plus YAML 1.2 floats such as 1e8 and 2e-3."""
+
+
+_Loader.add_implicit_resolver(
+    "tag:yaml.org,2002:float",
+    re.compile(r"^[-+]?[0-9][0-9_]*(?:\.[0-9_]*)?[eE][-+]?[0-9]+$"),
+    list("-+0123456789"),
+)
 
 
 @dataclass(frozen=True)
@@ -56,52 +74,100 @@ def load_yaml(path: str | Path) -> Located:
 def parse_yaml(text: str, name: str = "<config>") -> Located:
     """Parse YAML text; see `load_yaml`."""
     try:
-        node = yaml.compose(text, Loader=yaml.SafeLoader)
+        node = yaml.compose(text, Loader=_Loader)
     except yaml.MarkedYAMLError as error:
-        mark = error.problem_mark
-        line = mark.line + 1 if mark is not None else 1
-        hint = ""
-        source_line = text.splitlines()[line - 1] if 0 < line <= len(text.splitlines()) else ""
-        if re.search(r"\{\d+\}", source_line):
-            hint = '; inside { } a placeholder like {1} must be quoted: topic: "site/{1}/met/temp"'
-        raise ConfigError(f"{name}:{line}: YAML syntax error: {error.problem}{hint}") from None
+        raise ConfigError(_syntax_message(error, text, name)) from None
     except yaml.YAMLError as error:
         raise ConfigError(f"{name}: YAML error: {error}") from None
     lines: dict[str, int] = {}
     if node is None:
         return Located(name, None, lines)
-    constructor = yaml.SafeLoader(text)  # only used for its scalar constructors
+    builder = _Builder(yaml.SafeLoader(text), name)  # the loader only for its scalars
     try:
-        data = _build(node, "", lines, constructor, name)
+        data = builder.build(node, "")
     finally:
-        constructor.dispose()
-    return Located(name, data, lines)
+        builder.loader.dispose()
+    return Located(name, data, builder.lines)
 
 
-def _build(
-    node: yaml.Node, path: str, lines: dict[str, int], loader: yaml.SafeLoader, name: str
-) -> Any:
-    lines.setdefault(path, node.start_mark.line + 1)
-    if isinstance(node, yaml.MappingNode):
+def _syntax_message(error: yaml.MarkedYAMLError, text: str, name: str) -> str:
+    """`file:line: YAML syntax error: ...` with a hint for the mistakes people make."""
+    mark = error.problem_mark
+    line = mark.line + 1 if mark is not None else 1
+    source = text.splitlines()
+    source_line = source[line - 1] if 0 < line <= len(source) else ""
+    if re.search(r"\{\d+\}", source_line):
+        hint = 'inside { } a placeholder like {1} must be quoted: topic: "site/{1}/met/temp"'
+    elif "\t" in source_line:
+        hint = "indent with spaces; YAML does not allow tabs"
+    elif error.context_mark is not None and error.context:
+        hint = f"check the brackets and indentation from line {error.context_mark.line + 1} on"
+    else:
+        hint = "check the indentation and quoting of this line"
+    return f"{name}:{line}: YAML syntax error: {error.problem}; {hint}"
+
+
+class _Builder:
+    """Turns a composed node tree into plain data, recording the line of every key path."""
+
+    def __init__(self, loader: yaml.SafeLoader, name: str) -> None:
+        self.loader = loader  # only its scalar constructors are used
+        self.name = name
+        self.lines: dict[str, int] = {}
+        self._open: set[int] = set()  # nodes being built: an alias back to one is a cycle
+        self._count = 0
+
+    def build(self, node: yaml.Node, path: str) -> Any:
+        line = node.start_mark.line + 1
+        self.lines.setdefault(path, line)
+        self._count += 1
+        if id(node) in self._open:
+            raise ConfigError(f"{self.name}:{line}: an alias refers to itself; remove the loop")
+        if self._count > MAX_NODES:
+            raise ConfigError(
+                f"{self.name}:{line}: aliases expand to more than {MAX_NODES} values; "
+                "write the config without nested aliases"
+            )
+        self._open.add(id(node))
+        try:
+            if isinstance(node, yaml.MappingNode):
+                return self._mapping(node, path)
+            if isinstance(node, yaml.SequenceNode):
+                return [self.build(item, f"{path}[{i}]") for i, item in enumerate(node.value)]
+            return self.loader.construct_object(node, deep=True)
+        except yaml.constructor.ConstructorError as error:
+            raise ConfigError(
+                f"{self.name}:{line}: {error.problem}; write plain YAML values (no tags)"
+            ) from None
+        finally:
+            self._open.discard(id(node))
+
+    def _mapping(self, node: yaml.MappingNode, path: str) -> dict[str, Any]:
         result: dict[str, Any] = {}
         for key_node, value_node in node.value:
-            key = loader.construct_object(key_node, deep=True)
-            if not isinstance(key, (str, int, float, bool)) or isinstance(key, bool):
-                raise ConfigError(f"{name}:{key_node.start_mark.line + 1}: keys must be names")
-            key = str(key)
+            line = key_node.start_mark.line + 1
+            if key_node.tag == _MERGE_TAG:
+                raise ConfigError(
+                    f"{self.name}:{line}: YAML merge keys (<<) are not supported; write the "
+                    "keys out, or use a basis_sets entry for shared bases"
+                )
+            key = self._key(key_node)
             child = f"{path}.{key}" if path else key
             if key in result:
-                raise ConfigError(
-                    f"{name}:{key_node.start_mark.line + 1}: {child}: key given twice; keep one"
-                )
-            lines[child] = key_node.start_mark.line + 1
-            result[key] = _build(value_node, child, lines, loader, name)
+                raise ConfigError(f"{self.name}:{line}: {child}: key given twice; keep one")
+            self.lines[child] = line
+            result[key] = self.build(value_node, child)
         return result
-    if isinstance(node, yaml.SequenceNode):
-        return [
-            _build(item, f"{path}[{i}]", lines, loader, name) for i, item in enumerate(node.value)
-        ]
-    try:
-        return loader.construct_object(node, deep=True)
-    except yaml.constructor.ConstructorError as error:
-        raise ConfigError(f"{name}:{node.start_mark.line + 1}: {error.problem}") from None
+
+    def _key(self, node: yaml.Node) -> str:
+        """A mapping key: a plain name or number, never a list, mapping or tagged object."""
+        key: Any = None
+        if isinstance(node, yaml.ScalarNode):
+            try:
+                key = self.loader.construct_object(node)
+            except yaml.constructor.ConstructorError:
+                key = None
+        if not isinstance(key, (str, int, float)) or isinstance(key, bool):
+            line = node.start_mark.line + 1
+            raise ConfigError(f"{self.name}:{line}: keys must be plain names, e.g. host")
+        return str(key)
