@@ -279,7 +279,11 @@ CHANNEL_KEYS = (
         "inputs",
         "any",
         "named inputs: name → {topic | field, max_age}",
-        extra={"type": "object", "additionalProperties": section_schema(INPUT_KEYS)},
+        extra={
+            "type": "object",
+            "propertyNames": {"pattern": INPUT_NAME.pattern, "not": {"const": "t"}},
+            "additionalProperties": section_schema(INPUT_KEYS),
+        },
     ),
     Key("learn", "section", "what teaches the model", keys=LEARN_KEYS),
     Key("memory", "section", "how fast old samples are forgotten", keys=MEMORY_KEYS),

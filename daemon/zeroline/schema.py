@@ -251,7 +251,28 @@ _CONVERTERS: dict[str, Callable[[Any, Key, str, Problems], Any]] = {
 
 # --- JSON Schema ----------------------------------------------------------------------------
 
-DURATION_PATTERN = r"^\s*[0-9]+(\.[0-9]*)?([eE][+-]?[0-9]+)?\s*(ms|s|sec|min|h|d|w|y)\s*$"
+_UNITS = "|".join(UNIT_SECONDS)  # the loader's unit words, so the two cannot disagree
+_AMOUNT = r"[0-9]+(\.[0-9]*)?([eE][+-]?[0-9]+)?"
+DURATION_PATTERN = rf"^\s*{_AMOUNT}\s*({_UNITS})\s*$"
+RATE_PATTERN = rf"^\s*[-+]?{_AMOUNT}\s*/\s*({_AMOUNT})?\s*({_UNITS})\s*$"
+
+
+def _enum_values(choices: tuple[str, ...]) -> list[str | int | float]:
+    """The choices, plus the number YAML makes of a numeric one (`protocol: 5` is the int 5,
+    which the loader accepts as "5")."""
+    values: list[str | int | float] = []
+    for choice in choices:
+        values.append(choice)
+        try:
+            number: int | float = int(choice)
+        except ValueError:
+            try:
+                number = float(choice)
+            except ValueError:
+                continue
+        if str(number) == choice:
+            values.append(number)
+    return values
 
 
 def json_schema_of(key: Key) -> dict[str, Any]:
@@ -275,9 +296,9 @@ def json_schema_of(key: Key) -> dict[str, Any]:
     elif kind == "number_or_duration":
         schema["anyOf"] = [{"type": "number"}, {"type": "string", "pattern": DURATION_PATTERN}]
     elif kind == "rate":
-        schema["anyOf"] = [{"type": "number"}, {"type": "string", "pattern": r"^.+/.+$"}]
+        schema["anyOf"] = [{"type": "number"}, {"type": "string", "pattern": RATE_PATTERN}]
     elif kind == "enum":
-        schema["enum"] = list(key.choices)
+        schema["enum"] = _enum_values(key.choices)
     elif kind == "section":
         schema.update(section_schema(key.keys))
     elif kind == "list":
