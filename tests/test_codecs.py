@@ -62,8 +62,12 @@ class TestMakeDecoder:
 
     @pytest.mark.parametrize(
         "limits",
-        [DecodeLimits(max_bytes=0), DecodeLimits(max_records=0), DecodeLimits(max_past_s=0),
-         DecodeLimits(max_future_s=-1)],
+        [
+            DecodeLimits(max_bytes=0),
+            DecodeLimits(max_records=0),
+            DecodeLimits(max_past_s=0),
+            DecodeLimits(max_future_s=-1),
+        ],
     )
     def test_bad_limits(self, limits: DecodeLimits) -> None:
         """Limits that would reject everything are a ConfigError."""
@@ -105,8 +109,9 @@ class TestJsonObject:
 
     def test_configurable_field_names(self) -> None:
         """time_field/value_field name the fields, and the time field never becomes a field."""
-        [reading] = decode("json", '{"ts": 1777636800, "no2": 7, "time": 5}',
-                           time_field="ts", value_field="no2")
+        [reading] = decode(
+            "json", '{"ts": 1777636800, "no2": 7, "time": 5}', time_field="ts", value_field="no2"
+        )
         assert (reading.time, reading.value, dict(reading.fields)) == (ARRIVAL, 7.0, {"time": 5.0})
 
     def test_only_fields_gives_value_none(self) -> None:
@@ -116,7 +121,7 @@ class TestJsonObject:
         assert dict(reading.fields) == {"check_value": 0.25}
 
     def test_null_value_reads_as_absent(self) -> None:
-        """"value": null with a numeric field is value None; alone it is missing_value."""
+        """ "value": null with a numeric field is value None; alone it is missing_value."""
         [reading] = decode("json", '{"value": null, "check_value": 1}')
         assert reading.value is None
         assert reason_of("json", '{"value": null}') == "missing_value"
@@ -124,16 +129,16 @@ class TestJsonObject:
     @pytest.mark.parametrize("value", ['"21.5"', "true", "false", "[1]", '{"v": 1}'])
     def test_value_must_be_a_number(self, value: str) -> None:
         """Strings, booleans, arrays and objects are not values."""
-        assert reason_of("json", '{"value": ' + value + '}') == "value_not_number"
+        assert reason_of("json", '{"value": ' + value + "}") == "value_not_number"
 
     @pytest.mark.parametrize("value", ["NaN", "Infinity", "-Infinity", "1e999", "9" * 400])
     def test_value_must_be_finite(self, value: str) -> None:
         """NaN, infinities and numbers beyond float range are non_finite."""
-        assert reason_of("json", '{"value": ' + value + '}') == "non_finite"
+        assert reason_of("json", '{"value": ' + value + "}") == "non_finite"
 
     def test_big_integer_field_is_ignored(self) -> None:
         """A field too large for a float is dropped like any other non-finite field."""
-        [reading] = decode("json", '{"value": 1, "big": ' + ("9" * 400) + '}')
+        [reading] = decode("json", '{"value": 1, "big": ' + ("9" * 400) + "}")
         assert dict(reading.fields) == {}
 
 
@@ -176,8 +181,9 @@ class TestJsonTime:
     def test_strings_are_rfc3339_in_every_unit(self) -> None:
         """An RFC 3339 string is absolute whatever the numeric time unit is."""
         for unit in codecs.TIME_UNITS:
-            [reading] = decode("json", '{"time": "2026-05-01T12:00:00Z", "value": 1}',
-                               time_unit=unit)
+            [reading] = decode(
+                "json", '{"time": "2026-05-01T12:00:00Z", "value": 1}', time_unit=unit
+            )
             assert reading.time == ARRIVAL
 
     @pytest.mark.parametrize("raw", ['"1777636800"', "true", "null", "[]", "{}", "1e999"])
@@ -269,13 +275,21 @@ class TestJsonBatch:
 
     def test_batch_in_order(self) -> None:
         """Every record becomes a reading, in payload order, with its own time."""
-        readings = decode("json", json.dumps([
-            {"time": ARRIVAL - 2, "value": 1},
-            {"time": "2026-05-01T11:59:59Z", "value": 2, "temp": 20},
-            {"value": 3},
-        ]))
+        readings = decode(
+            "json",
+            json.dumps(
+                [
+                    {"time": ARRIVAL - 2, "value": 1},
+                    {"time": "2026-05-01T11:59:59Z", "value": 2, "temp": 20},
+                    {"value": 3},
+                ]
+            ),
+        )
         assert [(r.time, r.value) for r in readings] == [
-            (ARRIVAL - 2, 1.0), (ARRIVAL - 1, 2.0), (ARRIVAL, 3.0)]
+            (ARRIVAL - 2, 1.0),
+            (ARRIVAL - 1, 2.0),
+            (ARRIVAL, 3.0),
+        ]
         assert dict(readings[1].fields) == {"temp": 20.0}
 
     def test_bad_record_rejects_the_batch_and_names_it(self) -> None:
@@ -292,8 +306,9 @@ class TestJsonBatch:
         """max_records bounds a batch; exactly the limit is fine."""
         limits = DecodeLimits(max_records=3)
         assert len(decode("json", '[{"value": 1}, {"value": 2}, {"value": 3}]', limits=limits)) == 3
-        assert reason_of("json", json.dumps([{"value": 1}] * 4), limits=limits) \
-            == "too_many_records"
+        assert (
+            reason_of("json", json.dumps([{"value": 1}] * 4), limits=limits) == "too_many_records"
+        )
 
 
 class TestNumber:
@@ -301,8 +316,15 @@ class TestNumber:
 
     @pytest.mark.parametrize(
         ("payload", "expected"),
-        [(b"21.5", 21.5), (b" 3e-2\n", 0.03), (b"-7", -7.0), (b"+.5", 0.5), (b"5.", 5.0),
-         (b"\t1E3\r\n", 1000.0), (b"0", 0.0)],
+        [
+            (b"21.5", 21.5),
+            (b" 3e-2\n", 0.03),
+            (b"-7", -7.0),
+            (b"+.5", 0.5),
+            (b"5.", 5.0),
+            (b"\t1E3\r\n", 1000.0),
+            (b"0", 0.0),
+        ],
     )
     def test_accepts(self, payload: bytes, expected: float) -> None:
         """Decimal and exponent notation, signs and surrounding whitespace."""
@@ -311,10 +333,19 @@ class TestNumber:
 
     @pytest.mark.parametrize(
         ("payload", "reason"),
-        [(b"", "not_a_number"), (b"1_000", "not_a_number"), (b"0x10", "not_a_number"),
-         (b"21,5", "not_a_number"), (b'"21.5"', "not_a_number"), (b"1 2", "not_a_number"),
-         ("٣".encode(), "not_a_number"), (b"nan", "non_finite"), (b"-Infinity", "non_finite"),
-         (b"1e999", "non_finite"), (b"\xff1", "not_utf8")],
+        [
+            (b"", "not_a_number"),
+            (b"1_000", "not_a_number"),
+            (b"0x10", "not_a_number"),
+            (b"21,5", "not_a_number"),
+            (b'"21.5"', "not_a_number"),
+            (b"1 2", "not_a_number"),
+            ("٣".encode(), "not_a_number"),
+            (b"nan", "non_finite"),
+            (b"-Infinity", "non_finite"),
+            (b"1e999", "non_finite"),
+            (b"\xff1", "not_utf8"),
+        ],
     )
     def test_rejects(self, payload: bytes, reason: str) -> None:
         """Anything but a plain finite decimal number is rejected with its reason."""
@@ -328,7 +359,8 @@ class TestSenmlRfcExamples:
         """RFC 8428 §5.1.1, from memory: one temperature with name, unit and no time (now)."""
         payload = '[{"n":"urn:dev:ow:10e2073a01080063","u":"Cel","v":23.1}]'
         assert decode("senml", payload) == [
-            Reading(ARRIVAL, 23.1, {}, "urn:dev:ow:10e2073a01080063", "Cel")]
+            Reading(ARRIVAL, 23.1, {}, "urn:dev:ow:10e2073a01080063", "Cel")
+        ]
 
     def test_5_1_2_multiple_datapoints_now(self) -> None:
         """RFC 8428 §5.1.2, from memory: voltage and current "now", the base name shared."""
@@ -363,11 +395,14 @@ class TestSenmlRfcExamples:
         readings = decode("senml", payload, arrival=bt + 2)
         assert [(r.name, r.unit, r.value) for r in readings] == [
             ("urn:dev:ow:10e2073a0108006:voltage", "V", 120.1),
-            *[("urn:dev:ow:10e2073a0108006:current", "A", v)
-              for v in (1.2, 1.3, 1.4, 1.5, 1.6, 1.7)],
+            *[
+                ("urn:dev:ow:10e2073a0108006:current", "A", v)
+                for v in (1.2, 1.3, 1.4, 1.5, 1.6, 1.7)
+            ],
         ]
         assert [r.time for r in readings] == pytest.approx(
-            [bt, bt - 5, bt - 4, bt - 3, bt - 2, bt - 1, bt], abs=1e-6)
+            [bt, bt - 5, bt - 4, bt - 3, bt - 2, bt - 1, bt], abs=1e-6
+        )
 
     # RFC 8428 §5.1.3 (from memory): humidity from a mobile device with position entries,
     # starting Mon Oct 31 13:24:24 UTC 2011, with a battery report at t=150.
@@ -390,12 +425,18 @@ class TestSenmlRfcExamples:
 
     # RFC 8428 §5.1.4 (from memory): the same pack in resolved form.
     RESOLVED_5_1_4: ClassVar[list[tuple[str, float, float]]] = [
-        ("%RH", 1.320067464e09, 20), ("lon", 1.320067464e09, 24.30621),
-        ("lat", 1.320067464e09, 60.07965), ("%RH", 1.320067524e09, 20.3),
-        ("lon", 1.320067524e09, 24.30622), ("lat", 1.320067524e09, 60.07965),
-        ("%RH", 1.320067584e09, 20.7), ("lon", 1.320067584e09, 24.30623),
-        ("lat", 1.320067584e09, 60.07966), ("%EL", 1.320067614e09, 98),
-        ("%RH", 1.320067644e09, 21.2), ("lon", 1.320067644e09, 24.30628),
+        ("%RH", 1.320067464e09, 20),
+        ("lon", 1.320067464e09, 24.30621),
+        ("lat", 1.320067464e09, 60.07965),
+        ("%RH", 1.320067524e09, 20.3),
+        ("lon", 1.320067524e09, 24.30622),
+        ("lat", 1.320067524e09, 60.07965),
+        ("%RH", 1.320067584e09, 20.7),
+        ("lon", 1.320067584e09, 24.30623),
+        ("lat", 1.320067584e09, 60.07966),
+        ("%EL", 1.320067614e09, 98),
+        ("%RH", 1.320067644e09, 21.2),
+        ("lon", 1.320067644e09, 24.30628),
         ("lat", 1.320067644e09, 60.07967),
     ]
 
@@ -421,36 +462,55 @@ class TestSenmlResolution:
 
     def test_base_value_is_added_and_persists(self) -> None:
         """bv applies to its own record and later ones until replaced (RFC 8428 §4.1)."""
-        readings = decode("senml", '[{"bn":"m.","bv":100,"n":"a","v":1},{"n":"b","v":2},'
-                                   '{"bv":10,"n":"c","v":3},{"n":"d","v":4}]')
+        readings = decode(
+            "senml",
+            '[{"bn":"m.","bv":100,"n":"a","v":1},{"n":"b","v":2},'
+            '{"bv":10,"n":"c","v":3},{"n":"d","v":4}]',
+        )
         assert [(r.name, r.value) for r in readings] == [
-            ("m.a", 101.0), ("m.b", 102.0), ("m.c", 13.0), ("m.d", 14.0)]
+            ("m.a", 101.0),
+            ("m.b", 102.0),
+            ("m.c", 13.0),
+            ("m.d", 14.0),
+        ]
 
     def test_base_name_and_unit_replaced(self) -> None:
         """A later bn/bu replaces the earlier one; u overrides bu for its record only."""
-        readings = decode("senml", '[{"bn":"x:","bu":"Cel","n":"a","v":1},{"n":"b","u":"K","v":2},'
-                                   '{"n":"c","v":3},{"bn":"y:","bu":"V","n":"a","v":4}]')
+        readings = decode(
+            "senml",
+            '[{"bn":"x:","bu":"Cel","n":"a","v":1},{"n":"b","u":"K","v":2},'
+            '{"n":"c","v":3},{"bn":"y:","bu":"V","n":"a","v":4}]',
+        )
         assert [(r.name, r.unit) for r in readings] == [
-            ("x:a", "Cel"), ("x:b", "K"), ("x:c", "Cel"), ("y:a", "V")]
+            ("x:a", "Cel"),
+            ("x:b", "K"),
+            ("x:c", "Cel"),
+            ("y:a", "V"),
+        ]
 
     def test_relative_times(self) -> None:
         """Resolved times below 2**28 are relative to arrival (RFC 8428 §4.5.3)."""
-        readings = decode("senml", '[{"n":"a","t":-5,"v":1},{"bt":-60,"n":"a","t":30,"v":2},'
-                                   '{"n":"a","v":3}]')
+        readings = decode(
+            "senml", '[{"n":"a","t":-5,"v":1},{"bt":-60,"n":"a","t":30,"v":2},{"n":"a","v":3}]'
+        )
         assert [r.time for r in readings] == [ARRIVAL - 5, ARRIVAL - 30, ARRIVAL - 60]
 
     def test_absolute_time_at_the_boundary(self) -> None:
         """2**28 itself is absolute (1978, too old in 2026); one second less is relative."""
         assert reason_of("senml", '[{"n":"a","t":268435456,"v":1}]') == "time_too_old"
-        [reading] = decode("senml", '[{"n":"a","t":268435455,"v":1}]',
-                           limits=DecodeLimits(max_future_s=3e8))
+        [reading] = decode(
+            "senml", '[{"n":"a","t":268435455,"v":1}]', limits=DecodeLimits(max_future_s=3e8)
+        )
         assert reading.time == ARRIVAL + 268435455
 
     def test_non_numeric_records_are_skipped(self) -> None:
         """vs, vb, vd and sum-only records are skipped; their base fields still apply."""
-        readings = decode("senml", '[{"bn":"d:","bv":5,"n":"state","vs":"on"},'
-                                   '{"n":"door","vb":true},{"n":"blob","vd":"aGk"},'
-                                   '{"n":"energy","s":12},{"n":"temp","v":1}]')
+        readings = decode(
+            "senml",
+            '[{"bn":"d:","bv":5,"n":"state","vs":"on"},'
+            '{"n":"door","vb":true},{"n":"blob","vd":"aGk"},'
+            '{"n":"energy","s":12},{"n":"temp","v":1}]',
+        )
         assert readings == [Reading(ARRIVAL, 6.0, {}, "d:temp", None)]
 
     def test_base_value_alone_is_no_reading(self) -> None:
@@ -480,9 +540,16 @@ class TestSenmlResolution:
 
     @pytest.mark.parametrize(
         "record",
-        ['{"n":5,"v":1}', '{"n":"a","v":"1"}', '{"n":"a","v":true}', '{"n":"a","vb":1}',
-         '{"n":"a","t":"now","v":1}', '{"bt":null,"n":"a","v":1}', '{"n":"a","v":1,"vs":"x"}',
-         '{"n":"a","u":7,"v":1}'],
+        [
+            '{"n":5,"v":1}',
+            '{"n":"a","v":"1"}',
+            '{"n":"a","v":true}',
+            '{"n":"a","vb":1}',
+            '{"n":"a","t":"now","v":1}',
+            '{"bt":null,"n":"a","v":1}',
+            '{"n":"a","v":1,"vs":"x"}',
+            '{"n":"a","u":7,"v":1}',
+        ],
     )
     def test_malformed_records(self, record: str) -> None:
         """Wrong field types and two value fields in one record are malformed_senml."""
@@ -576,11 +643,13 @@ class TestReasons:
     def test_details_quote_at_most_sixty_characters(self) -> None:
         """A long offending string is cut to ~60 characters in the detail."""
         long_text = "x" * 500
-        for kind, payload in [("json", '{"value": "' + long_text + '"}'),
-                              ("json", '{"time": "' + long_text + '", "value": 1}'),
-                              ("senml", '[{"n":"-' + long_text + '","v":1}]'),
-                              ("number", long_text),
-                              ("json", '{"value": ' + long_text)]:
+        for kind, payload in [
+            ("json", '{"value": "' + long_text + '"}'),
+            ("json", '{"time": "' + long_text + '", "value": 1}'),
+            ("senml", '[{"n":"-' + long_text + '","v":1}]'),
+            ("number", long_text),
+            ("json", '{"value": ' + long_text),
+        ]:
             with pytest.raises(DecodeError) as caught:
                 decode(kind, payload)
             assert "x" * 61 not in caught.value.detail, (kind, caught.value.detail)

@@ -59,8 +59,9 @@ def outcome(decoder: Decoder, payload: bytes, arrival: float = ARRIVAL) -> list[
         assert isinstance(reading, Reading)
         assert math.isfinite(reading.time)
         assert -LIMITS.max_past_s <= reading.time - arrival <= LIMITS.max_future_s
-        assert reading.value is None or (type(reading.value) is float
-                                         and math.isfinite(reading.value))
+        assert reading.value is None or (
+            type(reading.value) is float and math.isfinite(reading.value)
+        )
         assert all(type(v) is float and math.isfinite(v) for v in reading.fields.values())
         assert reading.value is not None or reading.fields
         assert reading.name is None or SENML_NAME.fullmatch(reading.name)
@@ -71,7 +72,11 @@ def outcome(decoder: Decoder, payload: bytes, arrival: float = ARRIVAL) -> list[
 # ----------------------------------------------------------------------------- strategies
 
 scalars = st.one_of(
-    st.none(), st.booleans(), st.integers(), st.floats(), st.text(max_size=12),
+    st.none(),
+    st.booleans(),
+    st.integers(),
+    st.floats(),
+    st.text(max_size=12),
 )
 json_values = st.recursive(
     scalars,
@@ -101,28 +106,34 @@ times = st.one_of(
     scalars,
 )
 json_objects = st.dictionaries(
-    st.one_of(st.sampled_from(["time", "value", "ts", "v", "check_value", "temp"]),
-              st.text(max_size=6)),
+    st.one_of(
+        st.sampled_from(["time", "value", "ts", "v", "check_value", "temp"]), st.text(max_size=6)
+    ),
     st.one_of(times, json_values),
     max_size=6,
 )
 
 _ALNUM = "abcXYZ019"
-valid_senml_names = st.builds(operator.add, st.sampled_from(_ALNUM),
-                              st.text(alphabet=_ALNUM + "-:./_", max_size=8))
+valid_senml_names = st.builds(
+    operator.add, st.sampled_from(_ALNUM), st.text(alphabet=_ALNUM + "-:./_", max_size=8)
+)
 numbers = st.one_of(st.integers(), st.floats())
 
 
-def _typed_fields(names: st.SearchStrategy[str], versions: st.SearchStrategy[int],
-                  units: st.SearchStrategy[str]) -> st.SearchStrategy[dict[str, Any]]:
+def _typed_fields(
+    names: st.SearchStrategy[str], versions: st.SearchStrategy[int], units: st.SearchStrategy[str]
+) -> st.SearchStrategy[dict[str, Any]]:
     """Optional SenML labels, each with its right JSON type but any content drawn from the
     given names, versions and units (plus huge and non-finite numbers for the numbers)."""
     return st.fixed_dictionaries(
         {},
         optional={
             "bn": names,
-            "bt": st.one_of(st.floats(min_value=ARRIVAL - 1e6, max_value=ARRIVAL + 1e5),
-                            st.floats(min_value=-1e6, max_value=1e6), numbers),
+            "bt": st.one_of(
+                st.floats(min_value=ARRIVAL - 1e6, max_value=ARRIVAL + 1e5),
+                st.floats(min_value=-1e6, max_value=1e6),
+                numbers,
+            ),
             "bu": units,
             "bv": numbers,
             "bver": versions,
@@ -148,22 +159,46 @@ _value_fields = st.one_of(
 #: valid names, versions and units (so whole packs decode), or any of them.
 plausible_records = st.builds(
     lambda fields, value: {**fields, **value},
-    _typed_fields(valid_senml_names, st.integers(min_value=1, max_value=10),
-                  st.sampled_from(["Cel", "V", "%RH", "lon", ""])),
+    _typed_fields(
+        valid_senml_names,
+        st.integers(min_value=1, max_value=10),
+        st.sampled_from(["Cel", "V", "%RH", "lon", ""]),
+    ),
     _value_fields,
 )
 well_typed_records = st.builds(
     lambda fields, value: {**fields, **value},
-    _typed_fields(st.text(max_size=8), st.integers(min_value=-2, max_value=12),
-                  st.sampled_from(["Cel", "", "\ud800"])),
+    _typed_fields(
+        st.text(max_size=8),
+        st.integers(min_value=-2, max_value=12),
+        st.sampled_from(["Cel", "", "\ud800"]),
+    ),
     _value_fields,
 )
 #: Records where any label may hold any JSON value, "must understand" labels included.
 any_typed_records = st.fixed_dictionaries(
     {},
-    optional={label: st.one_of(numbers, scalars, json_values) for label in (
-        "bn", "bt", "bu", "bv", "bs", "bver", "n", "u", "v", "vs", "vb", "vd", "s", "t",
-        "ut", "x_")},
+    optional={
+        label: st.one_of(numbers, scalars, json_values)
+        for label in (
+            "bn",
+            "bt",
+            "bu",
+            "bv",
+            "bs",
+            "bver",
+            "n",
+            "u",
+            "v",
+            "vs",
+            "vb",
+            "vd",
+            "s",
+            "t",
+            "ut",
+            "x_",
+        )
+    },
 )
 senml_records = st.one_of(plausible_records, well_typed_records, any_typed_records)
 senml_packs = st.one_of(
@@ -198,8 +233,10 @@ class TestNeverRaisesAnythingElse:
             outcome(decoder, encode(value))
 
     @FUZZ_STRUCTURED
-    @given(batch=st.one_of(json_objects, st.lists(json_objects, max_size=5)),
-           arrival=st.sampled_from([ARRIVAL, 0.0, 1e10]))
+    @given(
+        batch=st.one_of(json_objects, st.lists(json_objects, max_size=5)),
+        arrival=st.sampled_from([ARRIVAL, 0.0, 1e10]),
+    )
     def test_object_shaped_json(self, batch: Any, arrival: float) -> None:
         """Objects and batches with plausible and implausible times, values and fields."""
         outcome(DECODERS["json"], encode(batch), arrival)
@@ -240,8 +277,9 @@ class TestRoundTrips:
     def test_json_object(self, value: float, offset: float, temp: float) -> None:
         """A finite value, a time in the window and a field come back unchanged."""
         time = ARRIVAL + offset
-        [reading] = DECODERS["json"].decode(encode({"time": time, "value": value, "t": temp}),
-                                            ARRIVAL)
+        [reading] = DECODERS["json"].decode(
+            encode({"time": time, "value": value, "t": temp}), ARRIVAL
+        )
         assert reading == Reading(time, value, {"t": temp})
 
     @FUZZ
@@ -255,10 +293,13 @@ class TestRoundTrips:
     @given(
         prefix=valid_senml_names.map(lambda name: name + ":"),
         records=st.lists(
-            st.tuples(st.text(alphabet="abc019_", min_size=1, max_size=6),
-                      st.integers(min_value=-86400, max_value=86400),
-                      st.integers(min_value=-(10**9), max_value=10**9)),
-            min_size=1, max_size=8,
+            st.tuples(
+                st.text(alphabet="abc019_", min_size=1, max_size=6),
+                st.integers(min_value=-86400, max_value=86400),
+                st.integers(min_value=-(10**9), max_value=10**9),
+            ),
+            min_size=1,
+            max_size=8,
         ),
         base_time=st.integers(min_value=-86400, max_value=86400),
         base_value=st.integers(min_value=-1000, max_value=1000),
@@ -271,14 +312,15 @@ class TestRoundTrips:
         A metamorphic check of RFC 8428 §4.1 and §4.6 resolution (integers keep it exact).
         """
         start = int(ARRIVAL)
-        resolved = [{"n": prefix + name, "t": start + t, "v": v, "u": "Cel"}
-                    for name, t, v in records]
+        resolved = [
+            {"n": prefix + name, "t": start + t, "v": v, "u": "Cel"} for name, t, v in records
+        ]
         with_bases: list[dict[str, Any]] = [
-            {"n": name, "t": start + t - base_time, "v": v - base_value}
-            for name, t, v in records
+            {"n": name, "t": start + t - base_time, "v": v - base_value} for name, t, v in records
         ]
         with_bases[0].update(bn=prefix, bt=base_time, bv=base_value, bu="Cel")
         expected = DECODERS["senml"].decode(encode(resolved), ARRIVAL)
         assert DECODERS["senml"].decode(encode(with_bases), ARRIVAL) == expected
         assert [(r.name, r.time, r.value) for r in expected] == [
-            (prefix + name, float(start + t), float(v)) for name, t, v in records]
+            (prefix + name, float(start + t), float(v)) for name, t, v in records
+        ]

@@ -839,7 +839,7 @@ CASES = [
         channels:
           - {name: cell, topic: lab/cell, basis: loop}
         """,
-        "2: an alias refers to itself; remove the loop",
+        "2: an alias refers to the collection it is in",
     ),
     bad(
         "merge-key",
@@ -849,8 +849,7 @@ CASES = [
           - <<: *common
             name: cell
         """,
-        "3: YAML merge keys (<<) are not supported; write the keys out, or use a basis_sets "
-        "entry for shared bases",
+        "3: merge keys (<<) are not supported; write the keys out",
     ),
     # --- several problems at once -----------------------------------------------------------
     bad(

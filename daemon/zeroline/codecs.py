@@ -260,28 +260,34 @@ def parse_rfc3339(text: str) -> float:
     """
     match = _RFC3339.fullmatch(text)
     if match is None:
-        raise DecodeError("bad_time", f"time {_quote(text)} is not an RFC 3339 date-time; "
-                          f"{_RFC3339_HINT}")
+        raise DecodeError(
+            "bad_time", f"time {_quote(text)} is not an RFC 3339 date-time; {_RFC3339_HINT}"
+        )
     year, month, day, hour, minute, second, fraction, zulu, sign, off_hour, off_minute = (
-        match.groups())
+        match.groups()
+    )
     try:
         days = _dt.date(int(year), int(month), int(day)).toordinal() - _EPOCH_ORDINAL
     except ValueError:
-        raise DecodeError("bad_time", f"time {_quote(text)} names no calendar date; "
-                          f"{_RFC3339_HINT}") from None
+        raise DecodeError(
+            "bad_time", f"time {_quote(text)} names no calendar date; {_RFC3339_HINT}"
+        ) from None
     # Two-digit fields compare as strings: cheaper than int() and exact for "00".."99".
     if zulu is None:
         if off_hour > "23" or off_minute > "59":
-            raise DecodeError("bad_time", f"time {_quote(text)} has an offset out of range; "
-                              f"{_RFC3339_HINT}")
+            raise DecodeError(
+                "bad_time", f"time {_quote(text)} has an offset out of range; {_RFC3339_HINT}"
+            )
         offset = int(off_hour) * 3600 + int(off_minute) * 60
         if sign == "-":
             offset = -offset
     else:
         offset = 0
     if hour > "23" or minute > "59" or second > "60":
-        raise DecodeError("bad_time", f"time {_quote(text)} has an hour, minute or second out "
-                          f"of range; {_RFC3339_HINT}")
+        raise DecodeError(
+            "bad_time",
+            f"time {_quote(text)} has an hour, minute or second out of range; {_RFC3339_HINT}",
+        )
     whole = days * 86400 + int(hour) * 3600 + int(minute) * 60 + int(second) - offset
     return whole + float(fraction) if fraction else float(whole)
 
@@ -292,8 +298,11 @@ def _number_time(raw: object) -> float:
         value = _as_float(raw)
         if math.isfinite(value):
             return value
-    raise DecodeError("bad_time", f"time is {_describe(raw)}; send epoch seconds, epoch "
-                      f"milliseconds or RFC 3339 text ({_RFC3339_HINT})")
+    raise DecodeError(
+        "bad_time",
+        f"time is {_describe(raw)}; send epoch seconds, epoch "
+        f"milliseconds or RFC 3339 text ({_RFC3339_HINT})",
+    )
 
 
 def _time_auto(raw: object) -> float:
@@ -326,15 +335,24 @@ def _check_window(time: float, arrival: float, limits: DecodeLimits) -> None:
     """Reject a time implausibly far ahead of or behind the arrival time."""
     ahead = time - arrival
     if ahead > limits.max_future_s:
-        hint = " (it looks like milliseconds: set time_unit to ms or auto)" if (
-            time > MS_THRESHOLD) else ""
-        raise DecodeError("time_in_future", f"time {_iso(time)} is {ahead:.0f} s after arrival "
-                          f"{_iso(arrival)}; at most {limits.max_future_s:g} s is accepted"
-                          f"{hint}; check the logger's clock")
+        hint = (
+            " (it looks like milliseconds: set time_unit to ms or auto)"
+            if (time > MS_THRESHOLD)
+            else ""
+        )
+        raise DecodeError(
+            "time_in_future",
+            f"time {_iso(time)} is {ahead:.0f} s after arrival "
+            f"{_iso(arrival)}; at most {limits.max_future_s:g} s is accepted"
+            f"{hint}; check the logger's clock",
+        )
     if -ahead > limits.max_past_s:
-        raise DecodeError("time_too_old", f"time {_iso(time)} is {-ahead:.0f} s before arrival "
-                          f"{_iso(arrival)}; at most {limits.max_past_s:g} s is accepted; "
-                          "check the logger's clock and time unit")
+        raise DecodeError(
+            "time_too_old",
+            f"time {_iso(time)} is {-ahead:.0f} s before arrival "
+            f"{_iso(arrival)}; at most {limits.max_past_s:g} s is accepted; "
+            "check the logger's clock and time unit",
+        )
 
 
 # --------------------------------------------------------------------------- json
@@ -349,16 +367,19 @@ class _JsonDecoder:
 
     __slots__ = ("_limits", "_time_field", "_to_epoch", "_value_field")
 
-    def __init__(self, time_field: str, value_field: str, time_unit: str,
-                 limits: DecodeLimits) -> None:
+    def __init__(
+        self, time_field: str, value_field: str, time_unit: str, limits: DecodeLimits
+    ) -> None:
         self._time_field = time_field
         self._value_field = value_field
         self._to_epoch = _TIME_CONVERTERS[time_unit]
         self._limits = limits
 
     def __repr__(self) -> str:
-        return (f"make_decoder('json', time_field={self._time_field!r}, "
-                f"value_field={self._value_field!r}, limits={self._limits!r})")
+        return (
+            f"make_decoder('json', time_field={self._time_field!r}, "
+            f"value_field={self._value_field!r}, limits={self._limits!r})"
+        )
 
     def decode(self, payload: bytes, arrival: float) -> list[Reading]:
         doc = _parse_json(payload, self._limits.max_bytes)
@@ -369,13 +390,18 @@ class _JsonDecoder:
         if not doc:
             raise DecodeError("missing_value", f"payload is an empty array; {_JSON_HINT}")
         if len(doc) > self._limits.max_records:
-            raise DecodeError("too_many_records", f"batch has {len(doc)} records; at most "
-                              f"{self._limits.max_records} are accepted per message")
+            raise DecodeError(
+                "too_many_records",
+                f"batch has {len(doc)} records; at most "
+                f"{self._limits.max_records} are accepted per message",
+            )
         readings = []
         for index, record in enumerate(doc):
             if type(record) is not dict:
-                raise DecodeError("not_an_object", f"batch record {index} is "
-                                  f"{_describe(record)}; every record must be an object")
+                raise DecodeError(
+                    "not_an_object",
+                    f"batch record {index} is {_describe(record)}; every record must be an object",
+                )
             try:
                 readings.append(self._reading(record, arrival))
             except DecodeError as exc:
@@ -398,11 +424,17 @@ class _JsonDecoder:
         elif type(raw_value) is float or type(raw_value) is int:
             value = _as_float(raw_value)
             if not math.isfinite(value):
-                raise DecodeError("non_finite", f"{value_field!r} is {_describe(raw_value)}; "
-                                  "send a finite number (a missing reading: omit the field)")
+                raise DecodeError(
+                    "non_finite",
+                    f"{value_field!r} is {_describe(raw_value)}; "
+                    "send a finite number (a missing reading: omit the field)",
+                )
         else:
-            raise DecodeError("value_not_number", f"{value_field!r} is {_describe(raw_value)}; "
-                              "send a JSON number such as 21.5 (not a string, bool or object)")
+            raise DecodeError(
+                "value_not_number",
+                f"{value_field!r} is {_describe(raw_value)}; "
+                "send a JSON number such as 21.5 (not a string, bool or object)",
+            )
 
         fields: dict[str, float] = {}
         for key, item in record.items():
@@ -418,8 +450,9 @@ class _JsonDecoder:
             fields.pop(time_field, None)
             fields.pop(value_field, None)
         if value is None and not fields:
-            raise DecodeError("missing_value", f"no {value_field!r} and no other numeric field; "
-                              f"{_JSON_HINT}")
+            raise DecodeError(
+                "missing_value", f"no {value_field!r} and no other numeric field; {_JSON_HINT}"
+            )
         return Reading(time, value, MappingProxyType(fields) if fields else _NO_FIELDS)
 
 
@@ -429,13 +462,26 @@ class _JsonDecoder:
 #: RFC 8428 JSON labels (§4.1, §4.2) and the exact JSON type each may hold (§5).
 _NUMBER_TYPES = (int, float)
 _SENML_TYPES: dict[str, tuple[type, ...]] = {
-    "bn": (str,), "bt": _NUMBER_TYPES, "bu": (str,), "bv": _NUMBER_TYPES,
-    "bs": _NUMBER_TYPES, "bver": _NUMBER_TYPES, "n": (str,), "u": (str,),
-    "v": _NUMBER_TYPES, "vs": (str,), "vb": (bool,), "vd": (str,), "s": _NUMBER_TYPES,
-    "t": _NUMBER_TYPES, "ut": _NUMBER_TYPES,
+    "bn": (str,),
+    "bt": _NUMBER_TYPES,
+    "bu": (str,),
+    "bv": _NUMBER_TYPES,
+    "bs": _NUMBER_TYPES,
+    "bver": _NUMBER_TYPES,
+    "n": (str,),
+    "u": (str,),
+    "v": _NUMBER_TYPES,
+    "vs": (str,),
+    "vb": (bool,),
+    "vd": (str,),
+    "s": _NUMBER_TYPES,
+    "t": _NUMBER_TYPES,
+    "ut": _NUMBER_TYPES,
 }
 _TYPE_WORDS: dict[tuple[type, ...], str] = {
-    (str,): "a string", _NUMBER_TYPES: "a number", (bool,): "true or false",
+    (str,): "a string",
+    _NUMBER_TYPES: "a number",
+    (bool,): "true or false",
 }
 _VALUE_LABELS = ("v", "vs", "vb", "vd")
 #: RFC 8428 §4.5.1: first character alphanumeric, then alphanumerics and - : . / _
@@ -449,27 +495,42 @@ def _check_senml_record(record: dict[str, object]) -> None:
         allowed = _SENML_TYPES.get(label)
         if allowed is None:
             if label.endswith("_"):
-                raise DecodeError("malformed_senml", f"field {_quote(label)} ends in '_', so "
-                                  "it must be understood (RFC 8428 §4.4) and zeroline does "
-                                  "not know it; drop it or send plain RFC 8428 SenML")
+                raise DecodeError(
+                    "malformed_senml",
+                    f"field {_quote(label)} ends in '_', so "
+                    "it must be understood (RFC 8428 §4.4) and zeroline does "
+                    "not know it; drop it or send plain RFC 8428 SenML",
+                )
         elif type(item) not in allowed:
-            raise DecodeError("malformed_senml", f"field {label!r} is {_describe(item)}; it "
-                              f"must be {_TYPE_WORDS[allowed]} (RFC 8428 §5)")
+            raise DecodeError(
+                "malformed_senml",
+                f"field {label!r} is {_describe(item)}; it "
+                f"must be {_TYPE_WORDS[allowed]} (RFC 8428 §5)",
+            )
     if "bver" in record:
         _check_version(record["bver"])
-    if ("vs" in record or "vb" in record or "vd" in record) \
-            and sum(label in record for label in _VALUE_LABELS) > 1:
-        raise DecodeError("malformed_senml", "record holds more than one of v, vs, vb, vd; "
-                          "send one value per record")
+    if ("vs" in record or "vb" in record or "vd" in record) and sum(
+        label in record for label in _VALUE_LABELS
+    ) > 1:
+        raise DecodeError(
+            "malformed_senml",
+            "record holds more than one of v, vs, vb, vd; send one value per record",
+        )
 
 
 def _check_version(version: object) -> None:
     """bver must be a whole number this decoder understands (RFC 8428 §4.4)."""
-    if (type(version) is int or type(version) is float) and _as_float(version).is_integer() \
-            and 1 <= version <= SENML_VERSION:
+    if (
+        (type(version) is int or type(version) is float)
+        and _as_float(version).is_integer()
+        and 1 <= version <= SENML_VERSION
+    ):
         return
-    raise DecodeError("malformed_senml", f"bver is {_describe(version)}; zeroline "
-                      f"understands SenML versions 1 to {SENML_VERSION} (whole numbers)")
+    raise DecodeError(
+        "malformed_senml",
+        f"bver is {_describe(version)}; zeroline "
+        f"understands SenML versions 1 to {SENML_VERSION} (whole numbers)",
+    )
 
 
 def _senml_name(name: str) -> str | None:
@@ -477,9 +538,12 @@ def _senml_name(name: str) -> str | None:
     if not name:
         return None
     if _SENML_NAME.fullmatch(name) is None:
-        raise DecodeError("bad_senml_name", f"name {_quote(name)} is not a SenML name; use "
-                          "letters, digits and - : . / _ only, starting with a letter or digit "
-                          "(RFC 8428 §4.5.1)")
+        raise DecodeError(
+            "bad_senml_name",
+            f"name {_quote(name)} is not a SenML name; use "
+            "letters, digits and - : . / _ only, starting with a letter or digit "
+            "(RFC 8428 §4.5.1)",
+        )
     return name
 
 
@@ -489,8 +553,10 @@ def _senml_unit(unit: str | None) -> str | None:
     try:
         unit.encode("utf-8")
     except UnicodeEncodeError:  # a lone surrogate escape such as "\\ud800"
-        raise DecodeError("malformed_senml", f"unit {_quote(unit)} is not valid Unicode text; "
-                          "send a unit such as 'Cel'") from None
+        raise DecodeError(
+            "malformed_senml",
+            f"unit {_quote(unit)} is not valid Unicode text; send a unit such as 'Cel'",
+        ) from None
     return unit
 
 
@@ -510,15 +576,19 @@ class _SenmlDecoder:
         if type(pack) is not list:
             raise DecodeError("malformed_senml", f"payload is {_describe(pack)}; {_SENML_HINT}")
         if len(pack) > self._limits.max_records:
-            raise DecodeError("too_many_records", f"pack has {len(pack)} records; at most "
-                              f"{self._limits.max_records} are accepted per message")
+            raise DecodeError(
+                "too_many_records",
+                f"pack has {len(pack)} records; at most "
+                f"{self._limits.max_records} are accepted per message",
+            )
         readings: list[Reading] = []
         base_name, base_time, base_value = "", 0.0, 0.0
         base_unit: str | None = None
         for index, record in enumerate(pack):
             if type(record) is not dict:
-                raise DecodeError("malformed_senml", f"record {index} is {_describe(record)}; "
-                                  f"{_SENML_HINT}")
+                raise DecodeError(
+                    "malformed_senml", f"record {index} is {_describe(record)}; {_SENML_HINT}"
+                )
             try:
                 _check_senml_record(record)
                 # Base fields apply from their own record onwards (RFC 8428 §4.1).
@@ -535,8 +605,9 @@ class _SenmlDecoder:
                     continue  # a string/bool/data value or a sum: nothing for a baseline fit
                 value = base_value + _as_float(record["v"])
                 if not math.isfinite(value):
-                    raise DecodeError("non_finite", f"resolved value bv + v is {value!r}; send "
-                                      "finite numbers")
+                    raise DecodeError(
+                        "non_finite", f"resolved value bv + v is {value!r}; send finite numbers"
+                    )
                 time = base_time + _senml_time(record.get("t", 0.0), "t")
                 if time < SENML_RELATIVE_LIMIT:  # relative to now (RFC 8428 §4.5.3)
                     time += arrival
@@ -546,8 +617,11 @@ class _SenmlDecoder:
                 raise DecodeError(exc.reason, f"record {index}: {exc.detail}") from None
             readings.append(Reading(time, value, _NO_FIELDS, name, unit))
         if not readings:
-            raise DecodeError("no_numeric_records", f"none of the {len(pack)} records carries a "
-                              "numeric 'v'; send at least one record with a number in 'v'")
+            raise DecodeError(
+                "no_numeric_records",
+                f"none of the {len(pack)} records carries a "
+                "numeric 'v'; send at least one record with a number in 'v'",
+            )
         return readings
 
 
@@ -579,14 +653,18 @@ class _NumberDecoder:
 
     def decode(self, payload: bytes, arrival: float) -> list[Reading]:
         if len(payload) > self._max_bytes:
-            raise DecodeError("payload_too_large", f"payload is {len(payload)} bytes; at most "
-                              f"{self._max_bytes} are accepted")
+            raise DecodeError(
+                "payload_too_large",
+                f"payload is {len(payload)} bytes; at most {self._max_bytes} are accepted",
+            )
         if _PLAIN_NUMBER.fullmatch(payload) is None:
             raise _not_a_number(payload)
         value = float(payload)
         if not math.isfinite(value):
-            raise DecodeError("non_finite", f"{_quote(payload.decode('ascii'))} is too large for "
-                              "a float; send a finite number")
+            raise DecodeError(
+                "non_finite",
+                f"{_quote(payload.decode('ascii'))} is too large for a float; send a finite number",
+            )
         return [Reading(arrival, value, _NO_FIELDS)]
 
 
@@ -595,20 +673,34 @@ def _not_a_number(payload: bytes) -> DecodeError:
     try:
         text = payload.decode("utf-8")
     except UnicodeDecodeError as exc:
-        return DecodeError("not_utf8", f"byte 0x{payload[exc.start]:02x} at offset {exc.start} "
-                           "is not valid UTF-8; send the number as ASCII text such as 21.5")
+        return DecodeError(
+            "not_utf8",
+            f"byte 0x{payload[exc.start]:02x} at offset {exc.start} "
+            "is not valid UTF-8; send the number as ASCII text such as 21.5",
+        )
     if text.strip().lower().lstrip("+-").encode("utf-8") in _NON_FINITE_WORDS:
-        return DecodeError("non_finite", f"{_quote(text)} is not a finite number; send a finite "
-                           "number such as 21.5 (a missing reading: send nothing)")
-    return DecodeError("not_a_number", f"payload {_quote(text)} is not a plain number; send "
-                       "ASCII text such as 21.5 or 3e-2")
+        return DecodeError(
+            "non_finite",
+            f"{_quote(text)} is not a finite number; send a finite "
+            "number such as 21.5 (a missing reading: send nothing)",
+        )
+    return DecodeError(
+        "not_a_number",
+        f"payload {_quote(text)} is not a plain number; send ASCII text such as 21.5 or 3e-2",
+    )
 
 
 # --------------------------------------------------------------------------- factory
 
 
-def make_decoder(kind: str, *, time_field: str = "time", value_field: str = "value",
-                 time_unit: str = "auto", limits: DecodeLimits = DecodeLimits()) -> Decoder:
+def make_decoder(
+    kind: str,
+    *,
+    time_field: str = "time",
+    value_field: str = "value",
+    time_unit: str = "auto",
+    limits: DecodeLimits = DecodeLimits(),
+) -> Decoder:
     """Build the decoder for one channel's payload `kind`, specialised for its settings.
 
     `time_field`, `value_field` and `time_unit` only apply to ``json``: SenML times are
@@ -630,12 +722,15 @@ def make_decoder(kind: str, *, time_field: str = "time", value_field: str = "val
             raise ConfigError(f"time_unit {time_unit!r} is not one of {', '.join(TIME_UNITS)}")
         return _JsonDecoder(time_field, value_field, time_unit, limits)
     if kind in ("senml", "number"):
-        for option, given, default in (("time_field", time_field, "time"),
-                                       ("value_field", value_field, "value"),
-                                       ("time_unit", time_unit, "auto")):
+        for option, given, default in (
+            ("time_field", time_field, "time"),
+            ("value_field", value_field, "value"),
+            ("time_unit", time_unit, "auto"),
+        ):
             if given != default:
-                raise ConfigError(f"{option} only applies to payload 'json', not {kind!r}; "
-                                  f"remove it")
+                raise ConfigError(
+                    f"{option} only applies to payload 'json', not {kind!r}; remove it"
+                )
         return _SenmlDecoder(limits) if kind == "senml" else _NumberDecoder(limits)
     raise ConfigError(f"payload kind {kind!r} is unknown; use one of {', '.join(KINDS)}")
 
@@ -645,15 +740,19 @@ def _check_field_names(time_field: str, value_field: str) -> None:
         if not isinstance(name, str) or not name:
             raise ConfigError(f"{option} must be a non-empty field name, got {name!r}")
     if time_field == value_field:
-        raise ConfigError(f"time_field and value_field are both {time_field!r}; "
-                          "they must name different fields")
+        raise ConfigError(
+            f"time_field and value_field are both {time_field!r}; they must name different fields"
+        )
 
 
 def _check_limits(limits: DecodeLimits) -> None:
     checks = (
         ("max_bytes", limits.max_bytes, isinstance(limits.max_bytes, int) and limits.max_bytes > 0),
-        ("max_records", limits.max_records,
-         isinstance(limits.max_records, int) and limits.max_records > 0),
+        (
+            "max_records",
+            limits.max_records,
+            isinstance(limits.max_records, int) and limits.max_records > 0,
+        ),
         ("max_future_s", limits.max_future_s, limits.max_future_s >= 0),
         ("max_past_s", limits.max_past_s, limits.max_past_s > 0),
     )

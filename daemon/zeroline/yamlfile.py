@@ -5,8 +5,7 @@ keeps, for every key path (`channels[0].learn.mode`), the line it was written on
 safe YAML subset is built (no Python tags), and a key given twice in one mapping is an error
 rather than the silent "last one wins" of plain `yaml.safe_load`. Numbers in exponent
 notation without a dot (`1e8`, `2e-3`) are numbers, as in YAML 1.2, not the strings YAML 1.1
-makes of them. An alias that contains itself, or aliases that expand past `MAX_NODES`, are
-errors rather than a hang.
+makes of them. Aliases that expand past `MAX_NODES` values are an error rather than a hang.
 """
 
 from __future__ import annotations
@@ -20,9 +19,8 @@ import yaml
 
 from zeroline.errors import ConfigError
 
-#: More nodes than any real config has; stops "billion laughs" alias expansion.
+#: More values than any real config has; stops "billion laughs" alias expansion.
 MAX_NODES = 100_000
-_MERGE_TAG = "tag:yaml.org,2002:merge"
 
 
 class _Loader(yaml.SafeLoader):
@@ -82,12 +80,12 @@ def parse_yaml(text: str, name: str = "<config>") -> Located:
     lines: dict[str, int] = {}
     if node is None:
         return Located(name, None, lines)
-    builder = _Builder(yaml.SafeLoader(text), name)  # the loader only for its scalars
+    constructor = yaml.SafeLoader(text)  # only used for its scalar constructors
     try:
-        data = builder.build(node, "")
+        data = _build(node, "", lines, constructor, name, frozenset())
     finally:
-        builder.loader.dispose()
-    return Located(name, data, builder.lines)
+        constructor.dispose()
+    return Located(name, data, lines)
 
 
 def _syntax_message(error: yaml.MarkedYAMLError, text: str, name: str) -> str:
@@ -107,67 +105,65 @@ def _syntax_message(error: yaml.MarkedYAMLError, text: str, name: str) -> str:
     return f"{name}:{line}: YAML syntax error: {error.problem}; {hint}"
 
 
-class _Builder:
-    """Turns a composed node tree into plain data, recording the line of every key path."""
+#: Collections may carry only YAML's own map and sequence tags: no Python objects.
+_PLAIN_TAGS = {"tag:yaml.org,2002:map", "tag:yaml.org,2002:seq"}
+_MERGE_TAG = "tag:yaml.org,2002:merge"
 
-    def __init__(self, loader: yaml.SafeLoader, name: str) -> None:
-        self.loader = loader  # only its scalar constructors are used
-        self.name = name
-        self.lines: dict[str, int] = {}
-        self._open: set[int] = set()  # nodes being built: an alias back to one is a cycle
-        self._count = 0
 
-    def build(self, node: yaml.Node, path: str) -> Any:
-        line = node.start_mark.line + 1
-        self.lines.setdefault(path, line)
-        self._count += 1
-        if id(node) in self._open:
-            raise ConfigError(f"{self.name}:{line}: an alias refers to itself; remove the loop")
-        if self._count > MAX_NODES:
-            raise ConfigError(
-                f"{self.name}:{line}: aliases expand to more than {MAX_NODES} values; "
-                "write the config without nested aliases"
-            )
-        self._open.add(id(node))
-        try:
-            if isinstance(node, yaml.MappingNode):
-                return self._mapping(node, path)
-            if isinstance(node, yaml.SequenceNode):
-                return [self.build(item, f"{path}[{i}]") for i, item in enumerate(node.value)]
-            return self.loader.construct_object(node, deep=True)
-        except yaml.constructor.ConstructorError as error:
-            raise ConfigError(
-                f"{self.name}:{line}: {error.problem}; write plain YAML values (no tags)"
-            ) from None
-        finally:
-            self._open.discard(id(node))
-
-    def _mapping(self, node: yaml.MappingNode, path: str) -> dict[str, Any]:
+def _build(
+    node: yaml.Node,
+    path: str,
+    lines: dict[str, int],
+    loader: yaml.SafeLoader,
+    name: str,
+    active: frozenset[int],
+) -> Any:
+    """Plain data from a node; `active` holds the collections on the way here, so an alias
+    that points back into itself is refused instead of recursing forever."""
+    here = node.start_mark.line + 1
+    lines.setdefault(path, here)
+    if len(lines) > MAX_NODES:  # every value built has its own path, aliases included
+        raise ConfigError(
+            f"{name}:{here}: aliases expand to more than {MAX_NODES} values; "
+            "write the config without nested aliases"
+        )
+    if isinstance(node, (yaml.MappingNode, yaml.SequenceNode)):
+        if id(node) in active:
+            raise ConfigError(f"{name}:{here}: an alias refers to the collection it is in")
+        if node.tag not in _PLAIN_TAGS:
+            raise ConfigError(f"{name}:{here}: tag {node.tag!r} is not supported; remove it")
+        active = active | {id(node)}
+    if isinstance(node, yaml.MappingNode):
         result: dict[str, Any] = {}
         for key_node, value_node in node.value:
             line = key_node.start_mark.line + 1
             if key_node.tag == _MERGE_TAG:
                 raise ConfigError(
-                    f"{self.name}:{line}: YAML merge keys (<<) are not supported; write the "
-                    "keys out, or use a basis_sets entry for shared bases"
+                    f"{name}:{line}: merge keys (<<) are not supported; write the keys out"
                 )
-            key = self._key(key_node)
+            key = _scalar(key_node, loader, name)
+            if not isinstance(key, (str, int, float)) or isinstance(key, bool):
+                raise ConfigError(f"{name}:{line}: keys must be names")
+            key = str(key)
             child = f"{path}.{key}" if path else key
             if key in result:
-                raise ConfigError(f"{self.name}:{line}: {child}: key given twice; keep one")
-            self.lines[child] = line
-            result[key] = self.build(value_node, child)
+                raise ConfigError(f"{name}:{line}: {child}: key given twice; keep one")
+            lines[child] = line
+            result[key] = _build(value_node, child, lines, loader, name, active)
         return result
+    if isinstance(node, yaml.SequenceNode):
+        return [
+            _build(item, f"{path}[{i}]", lines, loader, name, active)
+            for i, item in enumerate(node.value)
+        ]
+    return _scalar(node, loader, name)
 
-    def _key(self, node: yaml.Node) -> str:
-        """A mapping key: a plain name or number, never a list, mapping or tagged object."""
-        key: Any = None
-        if isinstance(node, yaml.ScalarNode):
-            try:
-                key = self.loader.construct_object(node)
-            except yaml.constructor.ConstructorError:
-                key = None
-        if not isinstance(key, (str, int, float)) or isinstance(key, bool):
-            line = node.start_mark.line + 1
-            raise ConfigError(f"{self.name}:{line}: keys must be plain names, e.g. host")
-        return str(key)
+
+def _scalar(node: yaml.Node, loader: yaml.SafeLoader, name: str) -> Any:
+    line = node.start_mark.line + 1
+    try:
+        return loader.construct_object(node, deep=True)
+    except yaml.constructor.ConstructorError as error:
+        raise ConfigError(f"{name}:{line}: {error.problem}") from None
+    except ValueError as error:  # e.g. a timestamp-shaped value that is no real date
+        raise ConfigError(f"{name}:{line}: {node.value!r} is not a valid value ({error})") from None

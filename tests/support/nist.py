@@ -136,9 +136,7 @@ def dataset_path(name: str) -> Path:
         candidate = folder / f"{name}.dat"
         if candidate.is_file():
             return candidate
-    raise FileNotFoundError(
-        f"NIST StRD file {name}.dat is in neither {LOCAL_DIR} nor {SHARED_DIR}"
-    )
+    raise FileNotFoundError(f"NIST StRD file {name}.dat is in neither {LOCAL_DIR} nor {SHARED_DIR}")
 
 
 def load(name: str) -> Dataset:
