@@ -279,7 +279,11 @@ CHANNEL_KEYS = (
         "inputs",
         "any",
         "named inputs: name → {topic | field, max_age}",
-        extra={"type": "object", "additionalProperties": section_schema(INPUT_KEYS)},
+        extra={
+            "type": "object",
+            "propertyNames": {"pattern": INPUT_NAME.pattern, "not": {"const": "t"}},
+            "additionalProperties": section_schema(INPUT_KEYS),
+        },
     ),
     Key("learn", "section", "what teaches the model", keys=LEARN_KEYS),
     Key("memory", "section", "how fast old samples are forgotten", keys=MEMORY_KEYS),
@@ -305,7 +309,7 @@ TOP_KEYS = (
     Key(
         "channels",
         "list",
-        "the channels",
+        "the channels, each with at least name, topic and basis",
         required=True,
         items=Key("channel", "section", "one channel", keys=CHANNEL_KEYS),
     ),
@@ -452,6 +456,8 @@ def parse_config(text: str, name: str = "<config>") -> Config:
 
 def _from_located(located: Located) -> Config:
     problems = Problems()
+    if located.data is not None and not isinstance(located.data, Mapping):
+        raise ConfigProblemsError([f"{located.where('')}: (top): {_not_a_config(located.data)}"])
     top = read_section(located.data, TOP_KEYS, "", problems)
     timeseries = None
     if top["timeseries"] is not None:
@@ -462,7 +468,7 @@ def _from_located(located: Located) -> Config:
         for i, raw in enumerate(top["channels"] or [])
         if (channel := _channel(raw, f"channels[{i}]", basis_sets, problems)) is not None
     )
-    if not top["channels"] and "channels" in (located.data or {}):
+    if top["channels"] == [] and isinstance((located.data or {}).get("channels"), list):
         problems.add("channels", "the list is empty; configure at least one channel")
     _check_unique(channels, problems)
     _check_security(top, problems)
@@ -484,6 +490,15 @@ def _from_located(located: Located) -> Config:
     )
 
 
+def _not_a_config(data: Any) -> str:
+    kind = "a list" if isinstance(data, list) else f"the single value {data!r}"
+    hint = "; a bare list of basis terms is a basis file for `zeroline fit --basis`"
+    return (
+        "a config is a mapping of sections such as `broker:` and `channels:`, "
+        f"got {kind}{hint if isinstance(data, list) else ''}"
+    )
+
+
 def _basis_sets(raw: Any, problems: Problems) -> dict[str, Any]:
     if raw is None:
         return {}
@@ -496,8 +511,8 @@ def _basis_sets(raw: Any, problems: Problems) -> dict[str, Any]:
 def _channel(
     raw: dict[str, Any], path: str, basis_sets: Mapping[str, Any], problems: Problems
 ) -> ChannelConfig | None:
-    if raw is None or raw.get("name") is None or raw.get("topic") is None:
-        return None
+    if raw["name"] is None or raw["topic"] is None or raw["basis"] is None:
+        return None  # already reported as missing (or wrong)
     before = len(problems.items)
     inputs = _inputs(raw["inputs"], f"{path}.inputs", problems)
     names = frozenset(inputs)
@@ -553,8 +568,20 @@ def _inputs(raw: Any, path: str, problems: Problems) -> dict[str, InputConfig]:
     for name, spec in raw.items():
         child = f"{path}.{name}"
         name = str(name)
-        if not INPUT_NAME.match(name) or name == "t":
-            problems.add(child, f"{name!r} cannot name an input; use letters, digits and _ (not t)")
+        if name == "t":
+            problems.add(child, "'t' is time in every basis term; give the input another name")
+            continue
+        if not INPUT_NAME.match(name):
+            usable = re.sub(r"\W", "_", name)
+            usable = usable if INPUT_NAME.match(usable) else f"x_{usable}"
+            problems.add(
+                child,
+                f"{name!r} cannot name an input; use letters, digits and _ "
+                f"(no digit first), e.g. {usable}",
+            )
+            continue
+        if not isinstance(spec, Mapping):
+            problems.add(child, f"expected {{topic: ...}} or {{field: ...}}, got {spec!r}")
             continue
         values = read_section(spec, INPUT_KEYS, child, problems)
         if (values["topic"] is None) == (values["field"] is None):
@@ -614,12 +641,18 @@ def _alerts(raw: dict[str, Any], path: str, problems: Problems) -> AlertConfig:
     if check_raw["limit"] is not None:
         hard = check_raw["hard_limit"]
         if hard is not None and hard <= check_raw["limit"]:
-            problems.add(f"{path}.check.hard_limit", "must be larger than check.limit")
+            problems.add(
+                f"{path}.check.hard_limit",
+                f"must be larger than check.limit ({check_raw['limit']:g}), got {hard:g}",
+            )
         check = CheckConfig(
             check_raw["limit"], check_raw["consecutive"], hard, check_raw["clear_limit"]
         )
     elif check_raw["hard_limit"] is not None:
-        problems.add(f"{path}.check.limit", "check.hard_limit needs check.limit as well")
+        problems.add(
+            f"{path}.check.limit",
+            "check.hard_limit needs check.limit as well (the error that counts as a failure)",
+        )
     return AlertConfig(
         drift_limit=raw["drift_limit"],
         rate_limit=raw["rate_limit"],
@@ -684,18 +717,20 @@ def _check_learning(
 
 
 def _check_independence(basis: Basis, gain: Basis | None, path: str, problems: Problems) -> None:
-    colliding = dependent_terms(basis)
-    if colliding:
-        problems.add(
-            path,
-            f"terms {' and '.join(map(repr, colliding))} are linearly dependent "
-            "for any data (they span the same function); remove one",
-        )
-    if gain is not None and (colliding := dependent_terms(gain)):
-        problems.add(
-            path.replace(".basis", ".gain"),
-            f"terms {' and '.join(map(repr, colliding))} are linearly dependent",
-        )
+    for where, terms in ((path, basis), (path.replace(".basis", ".gain"), gain)):
+        colliding = dependent_terms(terms) if terms is not None else ()
+        if colliding:
+            problems.add(where, _dependent_message(colliding))
+
+
+def _dependent_message(names: tuple[str, ...]) -> str:
+    listed = ", ".join(map(repr, names[:-1])) + f" and {names[-1]!r}"
+    why = (
+        "one is a multiple of the other"
+        if len(names) == 2
+        else "one is a weighted sum of the others"
+    )
+    return f"columns {listed} are linearly dependent for any data ({why}); remove one"
 
 
 def _check_unique(channels: tuple[ChannelConfig, ...], problems: Problems) -> None:

@@ -15,7 +15,7 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
-from zeroline.durations import parse_duration, parse_rate
+from zeroline.durations import UNIT_SECONDS, parse_duration, parse_rate
 from zeroline.errors import ConfigError
 
 
@@ -69,7 +69,8 @@ def read_section(data: Any, keys: tuple[Key, ...], path: str, problems: Problems
         data = {}
     if not isinstance(data, Mapping):
         problems.add(path, f"expected a mapping of keys, got {_shown(data)}")
-        data = {}
+        # The keys inside are unknown, not missing: report no required key on top of this.
+        return {key.name: _default(key, _join(path, key.name), problems) for key in keys}
     names = [key.name for key in keys]
     for given in data:
         if given not in names:
@@ -80,7 +81,7 @@ def read_section(data: Any, keys: tuple[Key, ...], path: str, problems: Problems
         child = _join(path, key.name)
         if key.name not in data or data[key.name] is None:
             if key.required:
-                problems.add(child, f"missing required key; {key.doc}")
+                problems.add(child, f"missing required key; add `{key.name}:` ({key.doc})")
             result[key.name] = _default(key, child, problems)
             continue
         result[key.name] = read_value(data[key.name], key, child, problems)
@@ -111,6 +112,9 @@ def _join(path: str, name: str) -> str:
 
 
 def _shown(value: Any) -> str:
+    """A value as the user wrote it in YAML (true, not Python's True), shortened."""
+    if isinstance(value, bool) or value is None:
+        return {True: "true", False: "false", None: "null"}[value]
     text = repr(value)
     return text if len(text) <= 40 else text[:37] + "..."
 
@@ -123,25 +127,39 @@ def _str(value: Any, key: Key, path: str, problems: Problems) -> str:
 
 def _number(value: Any, key: Key, path: str, problems: Problems) -> float:
     if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-        raise ConfigError(f"expected a number, got {_shown(value)}")
+        raise ConfigError(f"expected a number, got {_shown(value)}{_unquote_hint(value)}")
     _range(float(value), key)
     return float(value)
 
 
 def _int(value: Any, key: Key, path: str, problems: Problems) -> int:
     if isinstance(value, bool) or not isinstance(value, int):
-        raise ConfigError(f"expected a whole number, got {_shown(value)}")
+        raise ConfigError(f"expected a whole number, got {_shown(value)}{_unquote_hint(value)}")
     _range(value, key)
     return value
 
 
-def _range(value: float, key: Key) -> None:
+def _unquote_hint(value: Any) -> str:
+    """A number written in quotes is text in YAML; say so instead of just "not a number"."""
+    if isinstance(value, str):
+        try:
+            float(value)
+        except ValueError:
+            return ""
+        return f"; remove the quotes: {value.strip()}"
+    return ""
+
+
+def _range(value: float, key: Key, shown: str = "") -> None:
+    """Check the bounds; `shown` is the value as the user wrote it (e.g. 2/d), if not a plain
+    number."""
+    shown = shown or f"{value:g}"
     if key.positive and value <= 0:
-        raise ConfigError(f"must be greater than zero, got {value:g}")
+        raise ConfigError(f"must be greater than zero, got {shown}")
     if key.minimum is not None and value < key.minimum:
-        raise ConfigError(f"must be at least {key.minimum:g}, got {value:g}")
+        raise ConfigError(f"must be at least {key.minimum:g}, got {shown}")
     if key.maximum is not None and value > key.maximum:
-        raise ConfigError(f"must be at most {key.maximum:g}, got {value:g}")
+        raise ConfigError(f"must be at most {key.maximum:g}, got {shown}")
 
 
 def _bool(value: Any, key: Key, path: str, problems: Problems) -> bool:
@@ -151,8 +169,12 @@ def _bool(value: Any, key: Key, path: str, problems: Problems) -> bool:
 
 
 def _duration(value: Any, key: Key, path: str, problems: Problems) -> float:
+    if isinstance(value, str) and value.strip().startswith("-"):
+        raise ConfigError(
+            f"{value!r}: a duration cannot be negative; write e.g. {value.strip()[1:]}"
+        )
     seconds = parse_duration(value)
-    _range(seconds, key)
+    _range(seconds, key, repr(value))
     return seconds
 
 
@@ -163,8 +185,16 @@ def _number_or_duration(value: Any, key: Key, path: str, problems: Problems) -> 
 
 
 def _rate(value: Any, key: Key, path: str, problems: Problems) -> float:
-    rate = parse_rate(value)
-    _range(rate, key)
+    try:
+        rate = parse_rate(value)
+    except ConfigError:
+        # parse_rate's messages quote the unit it tried ("1fortnight"); quote what was written.
+        units = ", ".join(UNIT_SECONDS)
+        raise ConfigError(
+            f"{_shown(value)} is not a rate; write an amount per unit of time, "
+            f"e.g. 2/d or 0.5/h (units: {units})"
+        ) from None
+    _range(rate, key, _shown(value))
     return rate
 
 
@@ -221,7 +251,28 @@ _CONVERTERS: dict[str, Callable[[Any, Key, str, Problems], Any]] = {
 
 # --- JSON Schema ----------------------------------------------------------------------------
 
-DURATION_PATTERN = r"^\s*[0-9]+(\.[0-9]*)?([eE][+-]?[0-9]+)?\s*(ms|s|sec|min|h|d|w|y)\s*$"
+_UNITS = "|".join(UNIT_SECONDS)  # the loader's unit words, so the two cannot disagree
+_AMOUNT = r"[0-9]+(\.[0-9]*)?([eE][+-]?[0-9]+)?"
+DURATION_PATTERN = rf"^\s*{_AMOUNT}\s*({_UNITS})\s*$"
+RATE_PATTERN = rf"^\s*[-+]?{_AMOUNT}\s*/\s*({_AMOUNT})?\s*({_UNITS})\s*$"
+
+
+def _enum_values(choices: tuple[str, ...]) -> list[str | int | float]:
+    """The choices, plus the number YAML makes of a numeric one (`protocol: 5` is the int 5,
+    which the loader accepts as "5")."""
+    values: list[str | int | float] = []
+    for choice in choices:
+        values.append(choice)
+        try:
+            number: int | float = int(choice)
+        except ValueError:
+            try:
+                number = float(choice)
+            except ValueError:
+                continue
+        if str(number) == choice:
+            values.append(number)
+    return values
 
 
 def json_schema_of(key: Key) -> dict[str, Any]:
@@ -245,9 +296,9 @@ def json_schema_of(key: Key) -> dict[str, Any]:
     elif kind == "number_or_duration":
         schema["anyOf"] = [{"type": "number"}, {"type": "string", "pattern": DURATION_PATTERN}]
     elif kind == "rate":
-        schema["anyOf"] = [{"type": "number"}, {"type": "string", "pattern": r"^.+/.+$"}]
+        schema["anyOf"] = [{"type": "number"}, {"type": "string", "pattern": RATE_PATTERN}]
     elif kind == "enum":
-        schema["enum"] = list(key.choices)
+        schema["enum"] = _enum_values(key.choices)
     elif kind == "section":
         schema.update(section_schema(key.keys))
     elif kind == "list":

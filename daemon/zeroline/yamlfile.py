@@ -3,7 +3,9 @@
 Config errors must read `file:line: key.path: problem; what would be right`, so the loader
 keeps, for every key path (`channels[0].learn.mode`), the line it was written on. Only the
 safe YAML subset is built (no Python tags), and a key given twice in one mapping is an error
-rather than the silent "last one wins" of plain `yaml.safe_load`.
+rather than the silent "last one wins" of plain `yaml.safe_load`. Numbers in exponent
+notation without a dot (`1e8`, `2e-3`) are numbers, as in YAML 1.2, not the strings YAML 1.1
+makes of them. Aliases that expand past `MAX_NODES` values are an error rather than a hang.
 """
 
 from __future__ import annotations
@@ -16,6 +18,20 @@ from typing import Any
 import yaml
 
 from zeroline.errors import ConfigError
+
+#: More values than any real config has; stops "billion laughs" alias expansion.
+MAX_NODES = 100_000
+
+
+class _Loader(yaml.SafeLoader):
+    """The safe loader, plus YAML 1.2 floats such as 1e8 and 2e-3."""
+
+
+_Loader.add_implicit_resolver(
+    "tag:yaml.org,2002:float",
+    re.compile(r"^[-+]?[0-9][0-9_]*(?:\.[0-9_]*)?[eE][-+]?[0-9]+$"),
+    list("-+0123456789"),
+)
 
 
 @dataclass(frozen=True)
@@ -56,15 +72,9 @@ def load_yaml(path: str | Path) -> Located:
 def parse_yaml(text: str, name: str = "<config>") -> Located:
     """Parse YAML text; see `load_yaml`."""
     try:
-        node = yaml.compose(text, Loader=yaml.SafeLoader)
+        node = yaml.compose(text, Loader=_Loader)
     except yaml.MarkedYAMLError as error:
-        mark = error.problem_mark
-        line = mark.line + 1 if mark is not None else 1
-        hint = ""
-        source_line = text.splitlines()[line - 1] if 0 < line <= len(text.splitlines()) else ""
-        if re.search(r"\{\d+\}", source_line):
-            hint = '; inside { } a placeholder like {1} must be quoted: topic: "site/{1}/met/temp"'
-        raise ConfigError(f"{name}:{line}: YAML syntax error: {error.problem}{hint}") from None
+        raise ConfigError(_syntax_message(error, text, name)) from None
     except yaml.YAMLError as error:
         raise ConfigError(f"{name}: YAML error: {error}") from None
     lines: dict[str, int] = {}
@@ -76,6 +86,23 @@ def parse_yaml(text: str, name: str = "<config>") -> Located:
     finally:
         constructor.dispose()
     return Located(name, data, lines)
+
+
+def _syntax_message(error: yaml.MarkedYAMLError, text: str, name: str) -> str:
+    """`file:line: YAML syntax error: ...` with a hint for the mistakes people make."""
+    mark = error.problem_mark
+    line = mark.line + 1 if mark is not None else 1
+    source = text.splitlines()
+    source_line = source[line - 1] if 0 < line <= len(source) else ""
+    if re.search(r"\{\d+\}", source_line):
+        hint = 'inside { } a placeholder like {1} must be quoted: topic: "site/{1}/met/temp"'
+    elif "\t" in source_line:
+        hint = "indent with spaces; YAML does not allow tabs"
+    elif error.context_mark is not None and error.context:
+        hint = f"check the brackets and indentation from line {error.context_mark.line + 1} on"
+    else:
+        hint = "check the indentation and quoting of this line"
+    return f"{name}:{line}: YAML syntax error: {error.problem}; {hint}"
 
 
 #: Collections may carry only YAML's own map and sequence tags: no Python objects.
@@ -95,6 +122,11 @@ def _build(
     that points back into itself is refused instead of recursing forever."""
     here = node.start_mark.line + 1
     lines.setdefault(path, here)
+    if len(lines) > MAX_NODES:  # every value built has its own path, aliases included
+        raise ConfigError(
+            f"{name}:{here}: aliases expand to more than {MAX_NODES} values; "
+            "write the config without nested aliases"
+        )
     if isinstance(node, (yaml.MappingNode, yaml.SequenceNode)):
         if id(node) in active:
             raise ConfigError(f"{name}:{here}: an alias refers to the collection it is in")

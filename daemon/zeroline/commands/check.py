@@ -2,6 +2,7 @@
 
 Exit 0 and a one-line summary when it is valid; otherwise print every problem as
 `file:line: key.path: what is wrong; what would be right` on standard output and exit 2.
+A file that cannot be read or is not valid YAML is one such problem line, too.
 """
 
 from __future__ import annotations
@@ -10,6 +11,7 @@ import argparse
 from typing import Any
 
 from zeroline.config import ConfigProblemsError, load_config
+from zeroline.errors import ConfigError
 
 EXIT_PROBLEMS = 2
 
@@ -24,10 +26,14 @@ def run(args: argparse.Namespace) -> int:
     try:
         config = load_config(args.config)
     except ConfigProblemsError as problems:
-        for line in problems.lines:
-            print(line)
-        print(f"{len(problems.lines)} problem(s) in {args.config}")
-        return EXIT_PROBLEMS
-    names = ", ".join(channel.name for channel in config.channels)
-    print(f"{args.config}: ok ({len(config.channels)} channel(s): {names})")
-    return 0
+        lines = problems.lines
+    except ConfigError as error:  # unreadable file or YAML syntax: one line, file:line first
+        lines = [str(error)]
+    else:
+        names = ", ".join(channel.name for channel in config.channels)
+        print(f"{args.config}: ok ({len(config.channels)} channel(s): {names})")
+        return 0
+    for line in lines:
+        print(line)
+    print(f"{len(lines)} problem(s) in {args.config}")
+    return EXIT_PROBLEMS
