@@ -7,8 +7,8 @@ import json
 import math
 
 import numpy as np
-from support.scenarios import channel_config, run_channel
 
+from support.scenarios import channel_config, run_channel
 from zeroline.channel import Channel
 from zeroline.simulate import DAY, START
 

@@ -47,7 +47,7 @@ def test_every_unit_is_listed_in_the_hint() -> None:
 
 @pytest.mark.parametrize(
     "text",
-    ["7", "d", "7 days", "7m", "-3h", "+3h", "7D", "3h30min", "", "  ", "h7", "1,5h", "∞s",
+    ["7", "d", "7 days", "7mo", "-3h", "+3h", "7D", "3h30min", "", "  ", "h7", "1,5h", "∞s",
      "1e400s", "1e999d", "nan s", "infs"],
 )  # fmt: skip
 def test_bad_durations_are_refused(text: str) -> None:
@@ -96,3 +96,8 @@ def test_bad_rates_are_refused(text: object) -> None:
     with pytest.raises(ConfigError) as caught:
         parse_rate(text)
     assert "\n" not in str(caught.value)
+
+
+def test_m_is_minutes() -> None:
+    """`m` is minutes, as the design's example config writes `max_age: 10m`."""
+    assert parse_duration("10m") == 600.0

@@ -177,7 +177,7 @@ def test_variables_of_lists_the_names_used() -> None:
         ("humidity * 2", "unknown name 'humidity'"),
         ("foo(t)", "unknown function 'foo'"),
         ("sin", "needs an argument"),
-        ("2m", "'2m' is neither a number nor a duration"),
+        ("2mo", "'2mo' is neither a number nor a duration"),
         ("2pi", "neither a number nor a duration"),
         ("t t", "unexpected 't'"),
         ("(t", "expected ')'"),

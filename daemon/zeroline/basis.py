@@ -398,7 +398,7 @@ def _variable(
             f"expected a variable name (t or a named input), got {of!r}", f"{path}.of"
         )
     if of != TIME and of not in inputs:
-        known = ", ".join(sorted(inputs)) or "none declared"
+        known = ", ".join(sorted(inputs)) or "none yet"
         raise ConfigError(
             f"{of!r} is not t or a declared input; declare it under the channel's inputs "
             f"(declared: {known})",
