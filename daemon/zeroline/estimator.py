@@ -73,7 +73,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -94,8 +94,7 @@ _CHUNK_MIN = 16  # replay: below this a chunk is not worth it; use the per-sampl
 _CHUNK_TRACE = 16.0  # replay: most information a chunk may add, relative to its start
 
 
-@dataclass(frozen=True, slots=True)
-class Innovation:
+class Innovation(NamedTuple):
     """What a sample says before it is learnt: for alerts and robust weights.
 
     `prediction` φᵀθ and `residual` y − φᵀθ use the estimate before the sample;
@@ -216,6 +215,8 @@ class RecursiveEstimator:
         self._prior_rows = np.zeros((p, p + 1), order="F")
         self._prior_rows[:, :p] = np.diag(1.0 / (self.prior_sd * self._scale))
         self._prior_rows[:, p] = self.prior_mean / self.prior_sd
+        self._prior_center = self.prior_mean * self._scale  # prior mean, internal units
+        self._prior_root = 1.0 / (self.prior_sd * self._scale)  # Λ, internal units
         self._row = np.zeros((1, p + 1), order="F")  # scratch for one absorbed row
         self._time: float | None = None
         self._top_up_after = (
@@ -349,7 +350,7 @@ class RecursiveEstimator:
 
     def _innovation(self, x: FloatArray, y: float) -> Innovation:
         p = self.n_terms
-        a = lapack.dtrtrs(self._factor[:p, :p], x, trans=1)[0]  # a = R⁻ᵀφ
+        a = lapack.dtrtrs(self._factor[:, :p], x, trans=1)[0]  # a = R⁻ᵀφ
         prediction = float(a @ self._factor[:p, p])  # φᵀθ = (R⁻ᵀφ)ᵀ z
         baseline_variance = float(a @ a)  # φᵀPφ = ‖R⁻ᵀφ‖²
         sd = self.residual_sd
@@ -439,7 +440,7 @@ class RecursiveEstimator:
     # ------------------------------------------------------------ results
     def _solution(self) -> FloatArray:
         p = self.n_terms
-        return np.asarray(lapack.dtrtrs(self._factor[:p, :p], self._factor[:p, p])[0])
+        return np.asarray(lapack.dtrtrs(self._factor[:, :p], self._factor[:p, p])[0])
 
     @property
     def coefficients(self) -> FloatArray:
@@ -464,7 +465,7 @@ class RecursiveEstimator:
         The published uncertainty of the baseline is √variance(φ)·residual_sd.
         """
         p = self.n_terms
-        a = lapack.dtrtrs(self._factor[:p, :p], self._internal(phi), trans=1)[0]
+        a = lapack.dtrtrs(self._factor[:, :p], self._internal(phi), trans=1)[0]
         return float(a @ a)
 
     @property
@@ -473,8 +474,7 @@ class RecursiveEstimator:
         p = self.n_terms
         if self._count <= p:
             return math.nan
-        x = self._solution()
-        penalty = (x - self.prior_mean * self._scale) / (self.prior_sd * self._scale)
+        penalty = (self._solution() - self._prior_center) * self._prior_root
         rss = self._factor[p, p] ** 2 - self.prior_weight * float(penalty @ penalty)
         return math.sqrt(max(rss, 0.0) / (self._count - p))
 
@@ -502,6 +502,7 @@ class RecursiveEstimator:
         self.prior_mean = self.prior_mean.copy()
         self.prior_mean[term] += delta
         self._prior_rows[:, p] += moved * self._prior_rows[:, term]
+        self._prior_center[term] += moved
         if self.window is None:
             self._factor[:p, p] += moved * self._factor[:p, term]  # z ← z + R·Δx
             return
@@ -727,7 +728,7 @@ def _plan_chunk(
         stop = start + int(np.searchsorted(times[start:stop], est._time + est.half_life, "right"))
     p = est.n_terms
     alpha = _decay(est, times[start:stop])
-    psi = lapack.dtrtrs(est._factor[:p, :p], np.asfortranarray(x[start:stop].T), trans=1)[0]
+    psi = lapack.dtrtrs(est._factor[:, :p], np.asfortranarray(x[start:stop].T), trans=1)[0]
     added = np.cumsum(weights[start:stop] / alpha * np.einsum("im,im->m", psi, psi))
     rows = int(np.searchsorted(added, _CHUNK_TRACE, "right"))
     return _Chunk(start, start + rows, alpha[:rows], np.ascontiguousarray(psi[:, :rows]))
@@ -788,8 +789,7 @@ def _replay_chunk(
     x0 = est._solution()  # θ₀ (internal units)
     e = target - rows @ x0
     d = w / alpha
-    prior_root = 1.0 / (est.prior_sd * est._scale)
-    prior_center = est.prior_mean * est._scale
+    prior_root, prior_center = est._prior_root, est._prior_center
     lift = prior_root[:, None] * lapack.dtrtri(r0)[0]  # L = Λ R₀⁻¹
     prior_rhs = prior_root * (prior_center - x0)
     gram, gvec = lift.T @ lift, lift.T @ prior_rhs
