@@ -89,7 +89,7 @@ PRIOR_TOP_UP = 1.0 / 16.0
 STATE_VERSION = 1
 _MAX_TERMS = 64
 _BLOCK = 64  # window: rows per checkpoint of the front stack
-_CHUNK_ROWS = 4096  # replay: most rows in one vectorised chunk
+_CHUNK_ROWS = 8192  # replay: most rows in one vectorised chunk
 _CHUNK_MIN = 16  # replay: below this a chunk is not worth it; use the per-sample path
 _CHUNK_TRACE = 16.0  # replay: most information a chunk may add, relative to its start
 
@@ -811,10 +811,9 @@ def _replay_chunk(
     rhs[:, 1] = psi
     rhs_before = rhs[:, 0].copy()  # the solve overwrites it
     total = est._factor[p, p] ** 2 + np.cumsum(d * e * e) + topped * float(prior_rhs @ prior_rhs)
-    _solve_spd_in_place(matrix, rhs)
-    u, v = rhs[:, 0], rhs[:, 1]
+    variance = _solve_spd_in_place(matrix, rhs) / alpha  # φᵀPφ = ψᵀM̃⁻¹ψ, M̃ = α·matrix
+    u = rhs[:, 0]
     theta = x0[:, None] + lapack.dtrtrs(r0, np.asfortranarray(u))[0]  # internal units
-    variance = np.einsum("im,im->m", psi, v) / alpha  # φᵀPφ = ψᵀM̃⁻¹ψ, M̃ = α·(matrix)
     objective = alpha * (total - np.einsum("im,im->m", rhs_before, u))
     penalty = (theta - prior_center[:, None]) * prior_root[:, None]
     rss = np.maximum(objective - prior * np.einsum("im,im->m", penalty, penalty), 0.0)
@@ -841,12 +840,12 @@ def _replay_chunk(
     est._count, est._information = float(count[-1]), float(information[-1])
 
 
-def _solve_spd_in_place(matrix: FloatArray, rhs: FloatArray) -> None:
-    """Solve M X = B for a batch, overwriting B (p, k, m) with X and M (p, p, m) with junk.
+def _solve_spd_in_place(matrix: FloatArray, rhs: FloatArray) -> FloatArray:
+    """For a batch of M (p, p, m), SPD by its lower triangle, and B = rhs (p, 2, m) holding
+    [b, ψ]: overwrite rhs[:, 0] with M⁻¹b and return ψᵀM⁻¹ψ = ‖L⁻¹ψ‖² (M = LLᵀ).
 
-    M is symmetric positive definite, given by its lower triangle. Cholesky column by column,
-    each operation vectorised over the batch: numpy's batched solve calls LAPACK once per
-    matrix, which measured ~5× slower at p = 6.
+    Cholesky column by column, each operation vectorised over the batch: numpy's batched
+    solve calls LAPACK once per matrix, which measured ~5× slower at p = 6. M is destroyed.
     """
     p = matrix.shape[0]
     scratch = np.empty_like(matrix[0])
@@ -858,16 +857,19 @@ def _solve_spd_in_place(matrix: FloatArray, rhs: FloatArray) -> None:
         if j + 1 < p:
             np.divide(matrix[j + 1 :, j], matrix[j, j], out=matrix[j + 1 :, j])
     step = np.empty_like(rhs[0])
-    for j in range(p):  # L Y = B
+    for j in range(p):  # L Y = [b, ψ]
         for k in range(j):
             np.multiply(rhs[k], matrix[j, k], out=step)
             np.subtract(rhs[j], step, out=rhs[j])
         np.divide(rhs[j], matrix[j, j], out=rhs[j])
-    for j in range(p - 1, -1, -1):  # Lᵀ X = Y
+    quadratic = np.einsum("im,im->m", rhs[:, 1], rhs[:, 1])  # ψᵀM⁻¹ψ = ‖L⁻¹ψ‖²
+    solution, one = rhs[:, 0], step[0]
+    for j in range(p - 1, -1, -1):  # Lᵀ x = y, for b only
         for i in range(j + 1, p):
-            np.multiply(rhs[i], matrix[i, j], out=step)
-            np.subtract(rhs[j], step, out=rhs[j])
-        np.divide(rhs[j], matrix[j, j], out=rhs[j])
+            np.multiply(solution[i], matrix[i, j], out=one)
+            np.subtract(solution[j], one, out=solution[j])
+        np.divide(solution[j], matrix[j, j], out=solution[j])
+    return np.asarray(quadratic)
 
 
 __all__: Sequence[str] = [
