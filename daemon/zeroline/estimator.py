@@ -66,6 +66,12 @@ information) that the normal equations *preconditioned by the chunk's exact star
 are well conditioned (condition ≤ 2·(2 + _CHUNK_TRACE)); every row's estimate within the chunk
 comes from vectorised prefix sums and a batched Cholesky solve, and the state at the chunk's
 end is recomputed exactly by one QR of all the chunk's rows stacked under the starting factor.
+An exact window replays per sample (its rows leave one by one; no vectorised form is exact).
+
+Threads: every matrix here is at most 13 wide. Multi-threaded OpenBLAS gains nothing at that
+size and, on a busy 2-core gateway, waking its threads made single LAPACK calls with many
+right-hand sides take milliseconds instead of microseconds (measured). Run the daemon and the
+replay with OPENBLAS_NUM_THREADS=1 (set before numpy is imported).
 """
 
 from __future__ import annotations
@@ -363,9 +369,8 @@ class RecursiveEstimator:
         p = self.n_terms
         root = math.sqrt(weight)
         row = self._row
-        row[0, :p] = x
-        row[0, p] = y
-        row *= root
+        np.multiply(x, root, out=row[0, :p])
+        row[0, p] = y * root
         if self.window is not None:
             assert self._time is not None
             self._back_rows.append((self._time, weight, row[0].copy()))
