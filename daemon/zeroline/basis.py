@@ -53,6 +53,9 @@ class Term(Protocol):
     @property
     def variables(self) -> frozenset[str]: ...
 
+    @property
+    def uses_time(self) -> bool: ...
+
     def evaluate(self, t: Array, inputs: Mapping[str, Array]) -> Array: ...
 
     def derivative(self, t: Array, inputs: Mapping[str, Array]) -> Array: ...
@@ -95,6 +98,10 @@ class Constant:
     def variables(self) -> frozenset[str]:
         return frozenset()
 
+    @property
+    def uses_time(self) -> bool:
+        return False
+
     def evaluate(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         return np.ones((t.shape[0], 1))
 
@@ -118,6 +125,10 @@ class Polynomial:
     @property
     def variables(self) -> frozenset[str]:
         return frozenset({self.u.of}) - {TIME}
+
+    @property
+    def uses_time(self) -> bool:
+        return self.u.of == TIME
 
     def evaluate(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         u = self.u.values(t, inputs)
@@ -144,6 +155,10 @@ class Exponential:
     @property
     def variables(self) -> frozenset[str]:
         return frozenset({self.u.of}) - {TIME}
+
+    @property
+    def uses_time(self) -> bool:
+        return self.u.of == TIME
 
     def evaluate(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         with np.errstate(over="ignore"):
@@ -175,6 +190,10 @@ class Periodic:
     @property
     def variables(self) -> frozenset[str]:
         return frozenset({self.u.of}) - {TIME}
+
+    @property
+    def uses_time(self) -> bool:
+        return self.u.of == TIME
 
     def _phase(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         u = self.u.values(t, inputs)
@@ -218,6 +237,10 @@ class Step:
     def variables(self) -> frozenset[str]:
         return frozenset({self.u.of}) - {TIME}
 
+    @property
+    def uses_time(self) -> bool:
+        return self.u.of == TIME
+
     def evaluate(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         u = self.u.values(t, inputs)
         threshold = (self.at - self.epoch) / self.u.scale if self.u.of == TIME else self.at
@@ -242,6 +265,10 @@ class Expression:
     @property
     def variables(self) -> frozenset[str]:
         return expression.variables_of(self.tree) - {TIME}
+
+    @property
+    def uses_time(self) -> bool:
+        return TIME in expression.variables_of(self.tree)
 
     def evaluate(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         return expression.evaluate(self.tree, {TIME: t, **inputs}, t.shape[0])[:, None]
@@ -275,6 +302,11 @@ class Basis:
         for term in self.terms:
             result |= term.variables
         return result
+
+    @property
+    def uses_time(self) -> bool:
+        """True when some term depends on time t."""
+        return any(term.uses_time for term in self.terms)
 
     def owners(self) -> tuple[int, ...]:
         """For each column, the index of the term (YAML entry) it comes from."""
@@ -322,8 +354,15 @@ def _check_keys(
 
 
 def _number(value: Any, path: str, *, positive: bool = False) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-        raise ConfigError(f"expected a finite number, got {value!r}", path)
+    try:
+        finite = (
+            isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+        )
+    except OverflowError:  # an integer too large for a float
+        finite = False
+    if not finite:
+        shown = repr(value) if len(repr(value)) < 40 else repr(value)[:37] + "..."
+        raise ConfigError(f"expected a finite number, got {shown}", path)
     if positive and value <= 0:
         raise ConfigError(f"must be greater than zero, got {value!r}", path)
     return float(value)

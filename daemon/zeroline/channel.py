@@ -43,6 +43,7 @@ STATE_VERSION = 1
 CONTROL_EVENTS = ("recalibrated", "cleaned", "replaced")
 CONDITION_EVERY = 32
 INPUT_MEAN_TAU = 86400.0  # time constant of the input means that drift is judged at
+SQUARED_PRIOR_SD = 1e12  # the w² factor carries data only; the prior is added separately
 
 
 @dataclass(frozen=True)
@@ -107,7 +108,9 @@ class ControlEvent:
             raise InputError(
                 f"control event {event!r} is not known; use one of {', '.join(CONTROL_EVENTS)}"
             )
-        mode = data.get("mode") or ("rezero" if event == "cleaned" else "reset")
+        # A recalibration or a cleaning changes the sensor's zero, not its shape (its
+        # temperature response, its creep): by default keep the shape. A new sensor starts over.
+        mode = data.get("mode") or ("reset" if event == "replaced" else "rezero")
         if mode not in ("reset", "rezero"):
             raise InputError(f"control mode {mode!r} is not known; use reset or rezero")
         time = data.get("time", default_time)
@@ -127,6 +130,7 @@ class Channel:
         self._gain_size = config.gain.size if config.gain is not None else 0
         self._min_samples = config.learn.min_samples or 2 * self.n_terms
         self._estimator = self._new_estimator()
+        self._squared = self._new_squared_weights()
         self._inputs = InputCache({i.name: i.max_age for i in config.inputs.values()})
         self._epoch: float | None = config.epoch
         self._basis: Basis | None = None
@@ -135,6 +139,7 @@ class Channel:
         self._last_useful = -math.inf
         self._condition: float | None = None
         self._input_means: dict[str, float] = {}
+        self._input_stage1: dict[str, float] = {}
         self._means_time: float | None = None
         self._since_condition = 0
         self.alerts = ChannelAlerts(self.name, config.alerts, cap=config.cap)
@@ -187,6 +192,8 @@ class Channel:
             return self._uncorrectable(sample, flags), self.alerts.on_missing(sample.time, flags)
         phi = self._basis.evaluate(np.array([t]), covariates)[0]
         psi = self._gain.evaluate(np.array([t]), covariates)[0] if self._gain else None
+        if self._last_useful > -math.inf and sample.time - self._last_useful > self.learn.max_gap:
+            flags.append(q.EXTRAPOLATING)  # judged before this sample teaches anything
         learned, check_error, z = self._learn(sample, t, phi, psi, stale="input_stale" in flags)
         if learned:
             self._last_useful = sample.time
@@ -216,15 +223,22 @@ class Channel:
         return result, events
 
     def control(self, event: ControlEvent) -> list[Any]:
-        """Apply a technician's action so it does not read as drift; returns alert clears."""
-        if event.event == "replaced" or event.mode == "reset":
-            self._estimator.reset()
-            if event.event == "replaced":
-                self._epoch = self.config.epoch
-                self._basis = self._gain = None
-                if self._epoch is not None:
-                    self._bind(self._epoch)
-                self._last_time = -math.inf
+        """Apply a technician's action so it does not read as drift; returns alert clears.
+
+        rezero keeps the learned shape (see `_rezero`); reset forgets every sample; a
+        replaced sensor also starts a new epoch (its settling terms start again) and new
+        input means. Readings older than the last one stay refused either way.
+        """
+        if event.event == "replaced":
+            self._estimator = self._new_estimator()
+            self._squared = self._new_squared_weights()
+            self._epoch, self._basis, self._gain = self.config.epoch, None, None
+            if self._epoch is not None:
+                self._bind(self._epoch)
+            self._input_means, self._input_stage1, self._means_time = {}, {}, None
+            self._last_useful = -math.inf
+        elif event.mode == "reset":
+            self._reset_estimators()
             self._last_useful = -math.inf
         else:
             self._rezero(event.time)
@@ -244,6 +258,10 @@ class Channel:
             prior_sd=memory.prior_sd,
             prior_mean=prior_mean,
         )
+
+    def _reset_estimators(self) -> None:
+        self._estimator.reset()
+        self._squared.reset()
 
     def _bind(self, epoch: float) -> None:
         self._epoch = epoch
@@ -283,6 +301,7 @@ class Channel:
         established = self._established()
         weight = self._weight(target - self._estimator.predict(row))
         innovation = self._estimator.update(row, target, weight, t)
+        self._squared.update(row, target, weight * weight, t)
         if not established:
             check_error = None  # an untrained model's error says nothing about the sensor
         return True, check_error, _standardised(innovation)
@@ -318,24 +337,48 @@ class Channel:
             weight *= self.learn.huber_k * sd / abs(residual)
         return weight
 
+    def _new_squared_weights(self) -> RecursiveEstimator:
+        """Information under squared weights (w², forgetting twice as fast), for the
+        sandwich covariance of the weighted estimate: P·(FᵀW²F)·P. P alone overstates the
+        variance of a forgetting estimate by up to 2× (for a constant model exactly 1+λ)."""
+        memory = self.config.memory
+        return RecursiveEstimator(
+            self.n_terms,
+            half_life=memory.half_life / 2 if memory.half_life else None,
+            window=memory.window,
+            prior_sd=SQUARED_PRIOR_SD,
+        )
+
+    def _baseline_variance(self, gradient: Array) -> float:
+        """Var of gradient·θ̂ / σ², the sandwich form gᵀP·(FᵀW²F + prior)·Pg.
+
+        The prior enters as in the estimate (once, with weight 1): the bound by the prior's
+        variance is kept."""
+        covariance = self._estimator.covariance
+        pg = covariance @ gradient
+        prior = float(np.sum((pg / self._estimator.prior_sd) ** 2))
+        return self._squared.information_form(pg) + prior * self._estimator.prior_weight
+
     def _established(self) -> bool:
         return self._estimator.effective_n >= self._min_samples
 
     def _rezero(self, time: float) -> None:
-        """Keep the learned shape but make the baseline zero now (sensor was adjusted)."""
+        """Keep the learned shape, make the drift zero now (the sensor's zero was adjusted).
+
+        "Zero" is judged where drift is judged: with the inputs at their running means, so
+        that re-zeroing on a cold morning does not bake that morning's temperature effect
+        into the new zero. Without a constant term there is nothing to shift: start over.
+        """
         if self._basis is None or "constant" not in self._basis.names:
-            self._estimator.reset()
+            self._reset_estimators()
             return
-        t = time - (self._epoch or 0.0)
-        covariates, _, missing = self._covariates(time)
-        if missing:
-            self._estimator.reset()
+        if set(self._input_means) < self._basis.variables:
+            self._reset_estimators()  # never saw the inputs: the shape is unknown anyway
             return
-        phi = self._basis.evaluate(np.array([t]), covariates)[0]
+        drift, _ = self._drift_at_means(time - (self._epoch or 0.0))
         index = self._gain_size + self._basis.names.index("constant")
-        full = np.zeros(self.n_terms)
-        full[self._gain_size :] = phi
-        self._estimator.shift(index, -self._estimator.predict(full))
+        self._estimator.shift(index, -drift)
+        self._squared.shift(index, -drift)
 
     # --- correcting ---------------------------------------------------------------------
 
@@ -360,10 +403,8 @@ class Channel:
         flags = list(flags)
         if not self._established():
             flags.append(q.LEARNING)
-        if sample.time - self._last_useful > self.learn.max_gap:
-            flags.append(q.EXTRAPOLATING)
-        if self._condition_number() > self.config.ill_conditioned_above:
-            flags.append(q.ILL_CONDITIONED)
+        if self._established() and self._condition_number() > self.config.ill_conditioned_above:
+            flags.append(q.ILL_CONDITIONED)  # while learning, too few samples is expected
         gain = 1.0
         if psi is None:
             gradient = np.concatenate([np.zeros(self._gain_size), phi])
@@ -373,7 +414,7 @@ class Channel:
             corrected = (sample.value - baseline) / gain if gain != 0 else math.nan
             # delta method: d corrected/d a = −corrected·ψ/g, d corrected/d θ = −φ/g
             gradient = np.concatenate([corrected * psi, phi]) / gain
-        uncertainty = sd * math.sqrt(max(float(gradient @ estimator.covariance @ gradient), 0.0))
+        uncertainty = sd * math.sqrt(max(self._baseline_variance(gradient), 0.0))
         corrected = self._capped(sample.value, corrected, flags)
         quality, code = q.summarise(flags)
         return Corrected(
@@ -427,16 +468,21 @@ class Channel:
         )
 
     def _track_means(self, time: float, covariates: dict[str, Array]) -> None:
-        """Running (exponentially weighted, time constant INPUT_MEAN_TAU) means of the
-        inputs, at which drift is judged: a compensated cross-sensitivity's daily swing is
-        the model working, not the sensor drifting."""
+        """Smoothed inputs at which drift is judged: a compensated cross-sensitivity's daily
+        swing is the model working, not the sensor drifting. Two cascaded exponential means
+        (time constant INPUT_MEAN_TAU each) cut a daily cycle to 1/(1 + (2π·τ/24 h)²) ≈ 2.5 %
+        of its amplitude; one stage would leave 16 %."""
         weight = 1.0
         if self._means_time is not None:
             weight = 1.0 - math.exp(-(time - self._means_time) / INPUT_MEAN_TAU)
         self._means_time = time
-        for name, value in covariates.items():
-            previous = self._input_means.get(name, float(value[0]))
-            self._input_means[name] = previous + weight * (float(value[0]) - previous)
+        for name, array in covariates.items():
+            value = float(array[0])
+            first = self._input_stage1.get(name, value)
+            first += weight * (value - first)
+            self._input_stage1[name] = first
+            previous = self._input_means.get(name, value)
+            self._input_means[name] = previous + weight * (first - previous)
 
     def _held_inputs(self, size: int) -> dict[str, Array]:
         return {name: np.full(size, mean) for name, mean in self._input_means.items()}
@@ -470,7 +516,7 @@ class Channel:
 
     def _health(self, flags: list[str], phi: Array, psi: Array | None) -> list[str]:
         problems = [flag for flag in flags if flag in (q.INPUT_STALE, q.ILL_CONDITIONED)]
-        if self._last_time - self._last_useful > self.learn.max_gap:
+        if self._last_time - self._last_useful > self.learn.max_gap and self._established():
             problems.append("no_useful_sample")
         if self._wound_up(phi, psi):
             problems.append("wind_up")
@@ -497,7 +543,8 @@ class Channel:
             "estimator": self._estimator.to_state(),
             "inputs": self._inputs.to_state(),
             "alerts": self.alerts.to_state(),
-            "input_means": dict(self._input_means),
+            "input_means": [dict(self._input_stage1), dict(self._input_means)],
+            "squared": self._squared.to_state(),
             "means_time": self._means_time,
         }
 
@@ -512,8 +559,11 @@ class Channel:
         self._last_useful = float(state["last_useful"])
         self._inputs.load_state(state["inputs"])
         self.alerts.load_state(state["alerts"])
-        self._input_means = {k: float(v) for k, v in state["input_means"].items()}
+        stage1, means = state["input_means"]
+        self._input_stage1 = {k: float(v) for k, v in stage1.items()}
+        self._input_means = {k: float(v) for k, v in means.items()}
         self._means_time = state["means_time"]
+        self._squared = RecursiveEstimator.from_state(state["squared"])
 
 
 def _standardised(innovation: Any) -> float | None:

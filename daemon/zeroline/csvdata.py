@@ -81,7 +81,7 @@ def read_table(path: str | Path) -> Table:
     """Read a CSV log; InputError (one line, with file:line) for anything malformed."""
     name = str(path)
     try:
-        handle = open(path, newline="", encoding="utf-8")  # noqa: SIM115 - closed below
+        handle = open(path, newline="", encoding="utf-8-sig")  # noqa: SIM115 - closed below
     except OSError as error:
         raise InputError(f"{name}: cannot open ({error.strerror}); check the path") from None
     with handle:

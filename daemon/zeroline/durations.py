@@ -6,6 +6,7 @@ the unit words, so messages about a bad duration read the same everywhere.
 
 from __future__ import annotations
 
+import math
 import re
 
 from zeroline.errors import ConfigError
@@ -42,6 +43,8 @@ def parse_duration(text: object, *, allow_zero: bool = True) -> float:
     if match is None or match.group(2) not in UNIT_SECONDS:
         raise ConfigError(f"{text!r} is not a duration; write {_HINT}")
     seconds = float(match.group(1)) * UNIT_SECONDS[match.group(2)]
+    if not math.isfinite(seconds):
+        raise ConfigError(f"{text!r} is too long to be a duration; write {_HINT}")
     if seconds == 0 and not allow_zero:
         raise ConfigError(f"{text!r} must be longer than zero")
     return seconds
@@ -58,6 +61,8 @@ def parse_rate(text: object) -> float:
     if isinstance(text, bool):
         raise ConfigError(f"expected a rate such as 2/d, got {text!r}")
     if isinstance(text, (int, float)):
+        if not math.isfinite(text):
+            raise ConfigError(f"{text!r} is not a finite rate; write e.g. 2/d")
         return float(text)
     if not isinstance(text, str) or "/" not in text:
         raise ConfigError(f"{text!r} is not a rate; write an amount per unit time, e.g. 2/d, 0.5/h")
@@ -68,6 +73,8 @@ def parse_rate(text: object) -> float:
         raise ConfigError(
             f"{text!r} is not a rate; the amount before '/' must be a number"
         ) from None
+    if not math.isfinite(value):
+        raise ConfigError(f"{text!r} is not a rate; the amount must be a finite number")
     unit = unit.strip()
     per = parse_duration(unit if unit[:1].isdigit() else "1" + unit, allow_zero=False)
     return value / per

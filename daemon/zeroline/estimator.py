@@ -473,6 +473,17 @@ class RecursiveEstimator:
         a = lapack.dtrtrs(self._factor[:, :p], self._internal(phi), trans=1)[0]
         return float(a @ a)
 
+    def information_form(self, v: ArrayLike) -> float:
+        """vᵀ·info·v = ‖R·v‖² in the user's units (info = Σ w·2^(−age/h)·φφᵀ + prior).
+
+        With a second estimator fed w² (and half the half-life) this gives the sandwich
+        variance of a weighted estimate: gᵀP·info₂·Pg.
+        """
+        p = self.n_terms
+        x = np.asarray(v, dtype=float) * self._scale
+        r = self._factor[:p, :p] @ x
+        return float(r @ r)
+
     @property
     def residual_sd(self) -> float:
         """σ̂ = √(Σ w·2^(−age/h)·r² / (effective_n − p)) at the current θ; NaN until n > p."""

@@ -70,21 +70,27 @@ def no2_station(days: float = 60, step: float = 600, seed: int = 7) -> dict[str,
     }
 
 
-def ph_river(days: float = 56, step: float = 900, seed: int = 11) -> dict[str, Array]:
+def ph_river(
+    days: float = 56,
+    step: float = 900,
+    seed: int = 11,
+    efficiency: tuple[float, float] = (0.98, 0.90),
+) -> dict[str, Array]:
     """A glass pH electrode (mV) in a river monitoring kiosk of our own.
 
     Logged in mV. The electrode's offset drifts slowly and its slope falls from 98 % to
     about 90 % of the Nernst slope over the run (ageing); once a week a technician dips it
     in pH 7 and pH 4 buffers (readings flagged with `check_value`, the buffer's pH).
     The channel learns raw_mV = a(T)·pH + offset(t) and publishes pH = corrected.
+    `efficiency` is the slope's fraction of the Nernst slope at the start and the end.
     """
     rng = np.random.default_rng(seed)
     time = START + np.arange(0, days * DAY, step)
     age = (time - START) / DAY
     temperature = 11 + diurnal(time, 2.5, 16) + rng.normal(0, 0.1, time.size)
     ph = 7.6 + 0.25 * np.sin(2 * math.pi * (time % DAY) / DAY) + rng.normal(0, 0.03, time.size)
-    efficiency = 0.98 - 0.08 * age / days
-    slope = -nernst_slope_mv(temperature) * efficiency
+    efficiency_now = efficiency[0] + (efficiency[1] - efficiency[0]) * age / days
+    slope = -nernst_slope_mv(temperature) * efficiency_now
     offset = 8.0 + 0.35 * age  # mV
     check = np.full(time.size, np.nan)
     weekly = [int(k) for k in np.nonzero(np.diff(np.floor(age / 7.0), prepend=-1) > 0)[0]]

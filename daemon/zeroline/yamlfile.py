@@ -72,36 +72,66 @@ def parse_yaml(text: str, name: str = "<config>") -> Located:
         return Located(name, None, lines)
     constructor = yaml.SafeLoader(text)  # only used for its scalar constructors
     try:
-        data = _build(node, "", lines, constructor, name)
+        data = _build(node, "", lines, constructor, name, frozenset())
     finally:
         constructor.dispose()
     return Located(name, data, lines)
 
 
+#: Collections may carry only YAML's own map and sequence tags: no Python objects.
+_PLAIN_TAGS = {"tag:yaml.org,2002:map", "tag:yaml.org,2002:seq"}
+_MERGE_TAG = "tag:yaml.org,2002:merge"
+
+
 def _build(
-    node: yaml.Node, path: str, lines: dict[str, int], loader: yaml.SafeLoader, name: str
+    node: yaml.Node,
+    path: str,
+    lines: dict[str, int],
+    loader: yaml.SafeLoader,
+    name: str,
+    active: frozenset[int],
 ) -> Any:
-    lines.setdefault(path, node.start_mark.line + 1)
+    """Plain data from a node; `active` holds the collections on the way here, so an alias
+    that points back into itself is refused instead of recursing forever."""
+    here = node.start_mark.line + 1
+    lines.setdefault(path, here)
+    if isinstance(node, (yaml.MappingNode, yaml.SequenceNode)):
+        if id(node) in active:
+            raise ConfigError(f"{name}:{here}: an alias refers to the collection it is in")
+        if node.tag not in _PLAIN_TAGS:
+            raise ConfigError(f"{name}:{here}: tag {node.tag!r} is not supported; remove it")
+        active = active | {id(node)}
     if isinstance(node, yaml.MappingNode):
         result: dict[str, Any] = {}
         for key_node, value_node in node.value:
-            key = loader.construct_object(key_node, deep=True)
-            if not isinstance(key, (str, int, float, bool)) or isinstance(key, bool):
-                raise ConfigError(f"{name}:{key_node.start_mark.line + 1}: keys must be names")
+            line = key_node.start_mark.line + 1
+            if key_node.tag == _MERGE_TAG:
+                raise ConfigError(
+                    f"{name}:{line}: merge keys (<<) are not supported; write the keys out"
+                )
+            key = _scalar(key_node, loader, name)
+            if not isinstance(key, (str, int, float)) or isinstance(key, bool):
+                raise ConfigError(f"{name}:{line}: keys must be names")
             key = str(key)
             child = f"{path}.{key}" if path else key
             if key in result:
-                raise ConfigError(
-                    f"{name}:{key_node.start_mark.line + 1}: {child}: key given twice; keep one"
-                )
-            lines[child] = key_node.start_mark.line + 1
-            result[key] = _build(value_node, child, lines, loader, name)
+                raise ConfigError(f"{name}:{line}: {child}: key given twice; keep one")
+            lines[child] = line
+            result[key] = _build(value_node, child, lines, loader, name, active)
         return result
     if isinstance(node, yaml.SequenceNode):
         return [
-            _build(item, f"{path}[{i}]", lines, loader, name) for i, item in enumerate(node.value)
+            _build(item, f"{path}[{i}]", lines, loader, name, active)
+            for i, item in enumerate(node.value)
         ]
+    return _scalar(node, loader, name)
+
+
+def _scalar(node: yaml.Node, loader: yaml.SafeLoader, name: str) -> Any:
+    line = node.start_mark.line + 1
     try:
         return loader.construct_object(node, deep=True)
     except yaml.constructor.ConstructorError as error:
-        raise ConfigError(f"{name}:{node.start_mark.line + 1}: {error.problem}") from None
+        raise ConfigError(f"{name}:{line}: {error.problem}") from None
+    except ValueError as error:  # e.g. a timestamp-shaped value that is no real date
+        raise ConfigError(f"{name}:{line}: {node.value!r} is not a valid value ({error})") from None
