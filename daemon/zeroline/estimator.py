@@ -16,8 +16,9 @@ RᵀR = info, Rθ = z, and ρ² the minimum of the weighted objective (data + pr
 R of a QR factorisation of all weighted rows [√w·φᵀ, √w·y] and prior rows, so
 
 - a new row is absorbed by one orthogonal triangularisation of [F; row] (LAPACK `dtpqrt`,
-  the structured "triangle on top of a few rows" QR: O(p²) per row, one compiled call
-  instead of a Python loop of p Givens rotations, which measured 3-4× slower);
+  the structured "triangle on top of a few rows" QR: O(p²) per row in one compiled call;
+  p Givens rotations as numpy operations, even in a closed form vectorised over the rows,
+  measured about 3× slower at p ≤ 12);
 - forgetting for Δt seconds is the exact scaling F ← F·√(2^(−Δt/h)) (irregular sampling is
   handled because the decay depends on elapsed time, not on the number of samples);
 - θ = R⁻¹z and φᵀPφ = ‖R⁻ᵀφ‖² are triangular solves; nothing is ever inverted in place, so
@@ -66,6 +67,12 @@ information) that the normal equations *preconditioned by the chunk's exact star
 are well conditioned (condition ≤ 2·(2 + _CHUNK_TRACE)); every row's estimate within the chunk
 comes from vectorised prefix sums and a batched Cholesky solve, and the state at the chunk's
 end is recomputed exactly by one QR of all the chunk's rows stacked under the starting factor.
+An exact window replays per sample (its rows leave one by one; no vectorised form is exact).
+
+Threads: every matrix here is at most 13 wide. Multi-threaded OpenBLAS gains nothing at that
+size and, on a busy 2-core gateway, waking its threads made single LAPACK calls with many
+right-hand sides take milliseconds instead of microseconds (measured). Run the daemon and the
+replay with OPENBLAS_NUM_THREADS=1 (set before numpy is imported).
 """
 
 from __future__ import annotations
@@ -73,7 +80,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -89,13 +96,12 @@ PRIOR_TOP_UP = 1.0 / 16.0
 STATE_VERSION = 1
 _MAX_TERMS = 64
 _BLOCK = 64  # window: rows per checkpoint of the front stack
-_CHUNK_ROWS = 4096  # replay: most rows in one vectorised chunk
+_CHUNK_ROWS = 8192  # replay: most rows in one vectorised chunk
 _CHUNK_MIN = 16  # replay: below this a chunk is not worth it; use the per-sample path
 _CHUNK_TRACE = 16.0  # replay: most information a chunk may add, relative to its start
 
 
-@dataclass(frozen=True, slots=True)
-class Innovation:
+class Innovation(NamedTuple):
     """What a sample says before it is learnt: for alerts and robust weights.
 
     `prediction` φᵀθ and `residual` y − φᵀθ use the estimate before the sample;
@@ -216,6 +222,8 @@ class RecursiveEstimator:
         self._prior_rows = np.zeros((p, p + 1), order="F")
         self._prior_rows[:, :p] = np.diag(1.0 / (self.prior_sd * self._scale))
         self._prior_rows[:, p] = self.prior_mean / self.prior_sd
+        self._prior_center = self.prior_mean * self._scale  # prior mean, internal units
+        self._prior_root = 1.0 / (self.prior_sd * self._scale)  # Λ, internal units
         self._row = np.zeros((1, p + 1), order="F")  # scratch for one absorbed row
         self._time: float | None = None
         self._top_up_after = (
@@ -349,7 +357,7 @@ class RecursiveEstimator:
 
     def _innovation(self, x: FloatArray, y: float) -> Innovation:
         p = self.n_terms
-        a = lapack.dtrtrs(self._factor[:p, :p], x, trans=1)[0]  # a = R⁻ᵀφ
+        a = lapack.dtrtrs(self._factor[:, :p], x, trans=1)[0]  # a = R⁻ᵀφ
         prediction = float(a @ self._factor[:p, p])  # φᵀθ = (R⁻ᵀφ)ᵀ z
         baseline_variance = float(a @ a)  # φᵀPφ = ‖R⁻ᵀφ‖²
         sd = self.residual_sd
@@ -362,9 +370,8 @@ class RecursiveEstimator:
         p = self.n_terms
         root = math.sqrt(weight)
         row = self._row
-        row[0, :p] = x
-        row[0, p] = y
-        row *= root
+        np.multiply(x, root, out=row[0, :p])
+        row[0, p] = y * root
         if self.window is not None:
             assert self._time is not None
             self._back_rows.append((self._time, weight, row[0].copy()))
@@ -439,7 +446,7 @@ class RecursiveEstimator:
     # ------------------------------------------------------------ results
     def _solution(self) -> FloatArray:
         p = self.n_terms
-        return np.asarray(lapack.dtrtrs(self._factor[:p, :p], self._factor[:p, p])[0])
+        return np.asarray(lapack.dtrtrs(self._factor[:, :p], self._factor[:p, p])[0])
 
     @property
     def coefficients(self) -> FloatArray:
@@ -464,7 +471,7 @@ class RecursiveEstimator:
         The published uncertainty of the baseline is √variance(φ)·residual_sd.
         """
         p = self.n_terms
-        a = lapack.dtrtrs(self._factor[:p, :p], self._internal(phi), trans=1)[0]
+        a = lapack.dtrtrs(self._factor[:, :p], self._internal(phi), trans=1)[0]
         return float(a @ a)
 
     def information_matrix(self) -> FloatArray:
@@ -483,8 +490,7 @@ class RecursiveEstimator:
         p = self.n_terms
         if self._count <= p:
             return math.nan
-        x = self._solution()
-        penalty = (x - self.prior_mean * self._scale) / (self.prior_sd * self._scale)
+        penalty = (self._solution() - self._prior_center) * self._prior_root
         rss = self._factor[p, p] ** 2 - self.prior_weight * float(penalty @ penalty)
         return math.sqrt(max(rss, 0.0) / (self._count - p))
 
@@ -512,6 +518,7 @@ class RecursiveEstimator:
         self.prior_mean = self.prior_mean.copy()
         self.prior_mean[term] += delta
         self._prior_rows[:, p] += moved * self._prior_rows[:, term]
+        self._prior_center[term] += moved
         if self.window is None:
             self._factor[:p, p] += moved * self._factor[:p, term]  # z ← z + R·Δx
             return
@@ -613,7 +620,7 @@ def replay_batch(
     """Learn rows phi (n, p), y (n) with fixed weights at times (n), as n calls of `update`.
 
     The estimator ends in the same state as after the per-sample calls and the returned
-    per-row arrays equal theirs (within ~1e-12 relative for a well-conditioned basis). With
+    per-row arrays equal theirs (measured ≤ 5e-12 relative on well-conditioned bases). With
     forgetting or none the work is vectorised in chunks; an exact window replays per sample.
     """
     p = estimator.n_terms
@@ -737,7 +744,7 @@ def _plan_chunk(
         stop = start + int(np.searchsorted(times[start:stop], est._time + est.half_life, "right"))
     p = est.n_terms
     alpha = _decay(est, times[start:stop])
-    psi = lapack.dtrtrs(est._factor[:p, :p], np.asfortranarray(x[start:stop].T), trans=1)[0]
+    psi = lapack.dtrtrs(est._factor[:, :p], np.asfortranarray(x[start:stop].T), trans=1)[0]
     added = np.cumsum(weights[start:stop] / alpha * np.einsum("im,im->m", psi, psi))
     rows = int(np.searchsorted(added, _CHUNK_TRACE, "right"))
     return _Chunk(start, start + rows, alpha[:rows], np.ascontiguousarray(psi[:, :rows]))
@@ -798,8 +805,7 @@ def _replay_chunk(
     x0 = est._solution()  # θ₀ (internal units)
     e = target - rows @ x0
     d = w / alpha
-    prior_root = 1.0 / (est.prior_sd * est._scale)
-    prior_center = est.prior_mean * est._scale
+    prior_root, prior_center = est._prior_root, est._prior_center
     lift = prior_root[:, None] * lapack.dtrtri(r0)[0]  # L = Λ R₀⁻¹
     prior_rhs = prior_root * (prior_center - x0)
     gram, gvec = lift.T @ lift, lift.T @ prior_rhs
@@ -821,10 +827,9 @@ def _replay_chunk(
     rhs[:, 1] = psi
     rhs_before = rhs[:, 0].copy()  # the solve overwrites it
     total = est._factor[p, p] ** 2 + np.cumsum(d * e * e) + topped * float(prior_rhs @ prior_rhs)
-    _solve_spd_in_place(matrix, rhs)
-    u, v = rhs[:, 0], rhs[:, 1]
+    variance = _solve_spd_in_place(matrix, rhs) / alpha  # φᵀPφ = ψᵀM̃⁻¹ψ, M̃ = α·matrix
+    u = rhs[:, 0]
     theta = x0[:, None] + lapack.dtrtrs(r0, np.asfortranarray(u))[0]  # internal units
-    variance = np.einsum("im,im->m", psi, v) / alpha  # φᵀPφ = ψᵀM̃⁻¹ψ, M̃ = α·(matrix)
     objective = alpha * (total - np.einsum("im,im->m", rhs_before, u))
     penalty = (theta - prior_center[:, None]) * prior_root[:, None]
     rss = np.maximum(objective - prior * np.einsum("im,im->m", penalty, penalty), 0.0)
@@ -851,12 +856,12 @@ def _replay_chunk(
     est._count, est._information = float(count[-1]), float(information[-1])
 
 
-def _solve_spd_in_place(matrix: FloatArray, rhs: FloatArray) -> None:
-    """Solve M X = B for a batch, overwriting B (p, k, m) with X and M (p, p, m) with junk.
+def _solve_spd_in_place(matrix: FloatArray, rhs: FloatArray) -> FloatArray:
+    """For a batch of M (p, p, m), SPD by its lower triangle, and B = rhs (p, 2, m) holding
+    [b, ψ]: overwrite rhs[:, 0] with M⁻¹b and return ψᵀM⁻¹ψ = ‖L⁻¹ψ‖² (M = LLᵀ).
 
-    M is symmetric positive definite, given by its lower triangle. Cholesky column by column,
-    each operation vectorised over the batch: numpy's batched solve calls LAPACK once per
-    matrix, which measured ~5× slower at p = 6.
+    Cholesky column by column, each operation vectorised over the batch: numpy's batched
+    solve calls LAPACK once per matrix, which measured ~5× slower at p = 6. M is destroyed.
     """
     p = matrix.shape[0]
     scratch = np.empty_like(matrix[0])
@@ -868,16 +873,19 @@ def _solve_spd_in_place(matrix: FloatArray, rhs: FloatArray) -> None:
         if j + 1 < p:
             np.divide(matrix[j + 1 :, j], matrix[j, j], out=matrix[j + 1 :, j])
     step = np.empty_like(rhs[0])
-    for j in range(p):  # L Y = B
+    for j in range(p):  # L Y = [b, ψ]
         for k in range(j):
             np.multiply(rhs[k], matrix[j, k], out=step)
             np.subtract(rhs[j], step, out=rhs[j])
         np.divide(rhs[j], matrix[j, j], out=rhs[j])
-    for j in range(p - 1, -1, -1):  # Lᵀ X = Y
+    quadratic = np.einsum("im,im->m", rhs[:, 1], rhs[:, 1])  # ψᵀM⁻¹ψ = ‖L⁻¹ψ‖²
+    solution, one = rhs[:, 0], step[0]
+    for j in range(p - 1, -1, -1):  # Lᵀ x = y, for b only
         for i in range(j + 1, p):
-            np.multiply(rhs[i], matrix[i, j], out=step)
-            np.subtract(rhs[j], step, out=rhs[j])
-        np.divide(rhs[j], matrix[j, j], out=rhs[j])
+            np.multiply(solution[i], matrix[i, j], out=one)
+            np.subtract(solution[j], one, out=solution[j])
+        np.divide(solution[j], matrix[j, j], out=solution[j])
+    return np.asarray(quadratic)
 
 
 __all__: Sequence[str] = [
