@@ -28,8 +28,9 @@ alerts:
 """
 
 
-def _linear(days: float, rate_per_day: float, noise: float = 0.3, seed: int = 1,
-            step: float = 900.0) -> dict[str, np.ndarray]:
+def _linear(
+    days: float, rate_per_day: float, noise: float = 0.3, seed: int = 1, step: float = 900.0
+) -> dict[str, np.ndarray]:
     rng = np.random.default_rng(seed)
     time = START + np.arange(0, days * DAY, step)
     drift = 1.0 + rate_per_day * (time - START) / DAY
@@ -50,8 +51,11 @@ def test_linear_drift_raises_rate_forecast_and_limit_once_each() -> None:
     assert len(residual) <= 2
     run.events = [e for e in run.events if e.rule != "residual_change"]
     states = [(e.rule, e.state) for e in run.events]
-    assert states == [("rate_limit", "raised"), ("forecast", "raised"),
-                      ("drift_limit", "raised")], states
+    assert states == [
+        ("rate_limit", "raised"),
+        ("forecast", "raised"),
+        ("drift_limit", "raised"),
+    ], states
     rate, forecast, limit = run.events
     # once the rate is significantly (2 standard uncertainties) beyond the limit: the true
     # rate is 0.5/d against 0.4/d; measured when set: day 1.8
@@ -211,3 +215,32 @@ def test_state_round_trip_mid_stream_gives_identical_results() -> None:
     for a, b in zip(whole.results[half:], rest.results, strict=True):
         assert (a.corrected, a.uncertainty, a.quality) == (b.corrected, b.uncertainty, b.quality)
     assert [e for e in whole.events if e.time >= data["time"][half]] == rest.events
+
+
+QUIET_REFERENCE = """
+name: cell
+topic: site/cell
+basis: [constant]
+inputs:
+  reference: {topic: site/ref, max_age: 0s}
+learn: {mode: reference, input: reference, max_gap: 2d}
+memory: {half_life: 10d}
+alerts: {dwell: 0s}
+"""
+
+
+def test_model_health_reports_no_useful_sample_after_max_gap() -> None:
+    """Reference checks every 6 h for 4 days, then none: once the last check is older than
+    max_gap (2 d) readings are 'extrapolating' and model_health raises naming
+    no_useful_sample."""
+    rng = np.random.default_rng(6)
+    time = START + np.arange(0, 9 * DAY, 1800.0)
+    value = 3.0 + rng.normal(0, 0.1, time.size)
+    reference = np.where(((time - START) % (6 * 3600) == 0) & (time < START + 4 * DAY), 0.0, np.nan)
+    data = {"time": time, "value": value, "reference": reference}
+    run = run_channel(channel_config(QUIET_REFERENCE), data, inputs_from_topics=("reference",))
+    health = [e for e in run.events if e.rule == "model_health" and e.state == "raised"]
+    assert len(health) == 1 and "no_useful_sample" in health[0].message
+    last_check = START + 4 * DAY - 6 * 3600
+    assert last_check + 2 * DAY < health[0].time <= last_check + 2 * DAY + 1800
+    assert run.results[-1].quality == "extrapolating"

@@ -166,3 +166,12 @@ def test_every_key_of_the_loader_is_in_the_schema() -> None:
     for name, entry in channel["properties"].items():
         assert entry["description"], name
     assert set(channel["properties"]) >= {"name", "topic", "basis", "gain", "inputs", "learn"}
+
+
+def test_readme_config_reference_is_current() -> None:
+    """The README's config reference table is generated from the same key definitions."""
+    writer = _writer()
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    assert writer.readme_with_reference(readme) == readme, (
+        "README.md's config reference is out of date; run `python config/write_schema.py`"
+    )

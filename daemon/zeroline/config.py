@@ -170,7 +170,7 @@ MEMORY_KEYS = (
     Key(
         "prior_sd",
         "number",
-        "prior standard deviation of each coefficient (user units)",
+        "prior SD of each coefficient, in multiples of the residual SD",
         default=1000.0,
         positive=True,
     ),
@@ -314,6 +314,27 @@ TOP_KEYS = (
         items=Key("channel", "section", "one channel", keys=CHANNEL_KEYS),
     ),
 )
+
+
+def reference_rows(keys: tuple[Key, ...] = TOP_KEYS, prefix: str = "") -> list[str]:
+    """The config reference as Markdown table rows: key path, default, meaning."""
+    rows: list[str] = []
+    for key in keys:
+        path = f"{prefix}{key.name}"
+        default = "" if key.default is None else f"`{key.default}`"
+        if key.required:
+            default = "required"
+        choices = f" ({' / '.join(key.choices)})" if key.choices else ""
+        rows.append(f"| `{path}` | {default} | {key.doc}{choices} |")
+        if key.kind == "section":
+            rows += reference_rows(key.keys, f"{path}.")
+        elif key.kind == "list" and key.items is not None and key.items.kind == "section":
+            rows += reference_rows(key.items.keys, f"{path}[].")
+        elif key.name == "inputs":
+            rows += reference_rows(INPUT_KEYS, f"{path}.NAME.")
+        elif key.name == "timeseries":
+            rows += reference_rows(TIMESERIES_KEYS, f"{path}.")
+    return rows
 
 
 def json_schema() -> dict[str, Any]:
