@@ -82,6 +82,20 @@ class Standardised:
         return self.label or self.of
 
 
+class _OfOneVariable:
+    """What a family of one standardised variable `u` says about the variables it reads."""
+
+    u: Standardised
+
+    @property
+    def variables(self) -> frozenset[str]:
+        return frozenset({self.u.of}) - {TIME}
+
+    @property
+    def uses_time(self) -> bool:
+        return self.u.of == TIME
+
+
 def _zeros(t: Array, k: int) -> Array:
     return np.zeros((t.shape[0], k))
 
@@ -110,7 +124,7 @@ class Constant:
 
 
 @dataclass(frozen=True)
-class Polynomial:
+class Polynomial(_OfOneVariable):
     """u, u², …, u^degree (no constant column: add `constant` yourself)."""
 
     u: Standardised
@@ -121,14 +135,6 @@ class Polynomial:
         base = self.u.text()
         wrapped = f"({base})" if not base.isidentifier() else base
         return tuple(base if k == 1 else f"{wrapped}^{k}" for k in range(1, self.degree + 1))
-
-    @property
-    def variables(self) -> frozenset[str]:
-        return frozenset({self.u.of}) - {TIME}
-
-    @property
-    def uses_time(self) -> bool:
-        return self.u.of == TIME
 
     def evaluate(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         u = self.u.values(t, inputs)
@@ -141,7 +147,7 @@ class Polynomial:
 
 
 @dataclass(frozen=True)
-class Exponential:
+class Exponential(_OfOneVariable):
     """exp(−u/τ): warm-up and settling."""
 
     u: Standardised
@@ -152,14 +158,6 @@ class Exponential:
     def names(self) -> tuple[str, ...]:
         return (f"exp(-{self.u.text()}/{self.tau_text})",)
 
-    @property
-    def variables(self) -> frozenset[str]:
-        return frozenset({self.u.of}) - {TIME}
-
-    @property
-    def uses_time(self) -> bool:
-        return self.u.of == TIME
-
     def evaluate(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         with np.errstate(over="ignore"):
             return np.exp(-self.u.values(t, inputs) / self.tau)[:, None]
@@ -169,7 +167,7 @@ class Exponential:
 
 
 @dataclass(frozen=True)
-class Periodic:
+class Periodic(_OfOneVariable):
     """sin/cos pairs of 2πk·u/period, k = 1…harmonics; for time the phase is anchored to UTC."""
 
     u: Standardised
@@ -186,14 +184,6 @@ class Periodic:
             arg = f"{factor}·{self.u.text()}/{self.period_text}"
             names += [f"sin({arg})", f"cos({arg})"]
         return tuple(names)
-
-    @property
-    def variables(self) -> frozenset[str]:
-        return frozenset({self.u.of}) - {TIME}
-
-    @property
-    def uses_time(self) -> bool:
-        return self.u.of == TIME
 
     def _phase(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         u = self.u.values(t, inputs)
@@ -221,7 +211,7 @@ class Periodic:
 
 
 @dataclass(frozen=True)
-class Step:
+class Step(_OfOneVariable):
     """0 before `at`, 1 from `at` on (a known event). For time, `at` is absolute epoch seconds."""
 
     u: Standardised
@@ -232,14 +222,6 @@ class Step:
     @property
     def names(self) -> tuple[str, ...]:
         return (f"step({self.u.text()}>={self.at_text})",)
-
-    @property
-    def variables(self) -> frozenset[str]:
-        return frozenset({self.u.of}) - {TIME}
-
-    @property
-    def uses_time(self) -> bool:
-        return self.u.of == TIME
 
     def evaluate(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         u = self.u.values(t, inputs)
