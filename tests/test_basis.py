@@ -335,3 +335,39 @@ def test_a_bare_number_period_for_raw_time_is_seconds() -> None:
 
 def test_largest_allowed_degree_is_accepted() -> None:
     assert basis_from(f"- polynomial: {{of: t, degree: {MAX_DEGREE}}}\n").size == MAX_DEGREE
+
+
+def test_scalar_row_equals_the_array_design_for_every_family() -> None:
+    """`Basis.row`/`slope` (the per-reading hot path, Python floats) give the same numbers
+    as `evaluate`/`derivative` (numpy arrays) for every family, to 1e-12 relative."""
+    import yaml
+
+    from zeroline.basis import parse_basis
+
+    spec = yaml.safe_load(
+        """
+- constant
+- polynomial: {of: t, degree: 3, scale: 30d, center: 2d}
+- polynomial: {of: temperature, degree: 2, center: 20}
+- exponential: {of: t, tau: 36h}
+- periodic: {of: t, period: 24h, harmonics: 2}
+- periodic: {of: temperature, period: 7}
+- step: {of: t, at: "2026-11-05T00:00:00Z"}
+- step: {of: temperature, at: 21}
+- expression: "log1p(t / 7d) * (temperature - 20) + sqrt(abs(temperature))"
+"""
+    )
+    basis = parse_basis(spec, inputs=frozenset({"temperature"})).with_epoch(1793491200.0)
+    rng = np.random.default_rng(12)
+    times = rng.uniform(0, 60 * 86400.0, 40)
+    temperatures = rng.uniform(5, 35, 40)
+    design = basis.evaluate(times, {"temperature": temperatures})
+    slopes = basis.derivative(times, {"temperature": temperatures})
+    for i in range(times.size):
+        inputs = {"temperature": float(temperatures[i])}
+        np.testing.assert_allclose(
+            basis.row(float(times[i]), inputs), design[i], rtol=1e-12, atol=1e-15
+        )
+        np.testing.assert_allclose(
+            basis.slope(float(times[i]), inputs), slopes[i], rtol=1e-12, atol=1e-18
+        )

@@ -123,6 +123,29 @@ class ControlEvent:
         return ControlEvent(float(time), str(event), str(mode))
 
 
+@dataclass(frozen=True)
+class _Fit:
+    """The estimator's state after a reading, read out once (each read-out costs solves).
+
+    `sandwich` is P·(FᵀW²F + prior)·P, the covariance (over σ̂²) of the weighted estimate:
+    P alone overstates the variance of a forgetting estimate by up to 2×."""
+
+    theta: Array
+    covariance: Array
+    sandwich: Array
+    sd: float
+
+    def variances(self, rows: Array) -> Array:
+        """gᵀ·sandwich·g for each row g (times σ̂² it is Var(gθ̂))."""
+        spread: Array = np.einsum("ij,jk,ik->i", rows, self.sandwich, rows)
+        return np.maximum(spread, 0.0)
+
+    def uncertainty(self, gradient: Array) -> float:
+        """σ̂·√(gᵀ·sandwich·g), the standard uncertainty of gθ̂."""
+        spread = float(gradient @ self.sandwich @ gradient)
+        return self.sd * math.sqrt(max(spread, 0.0))
+
+
 class Channel:
     """One sensor stream's model: feed it readings with `process`, actions with `control`."""
 
@@ -194,25 +217,27 @@ class Channel:
         covariates, flags, missing = self._covariates(sample.time)
         if missing:
             return self._uncorrectable(sample, flags), self.alerts.on_missing(sample.time, flags)
-        phi = self._basis.evaluate(np.array([t]), covariates)[0]
-        psi = self._gain.evaluate(np.array([t]), covariates)[0] if self._gain else None
+        phi = self._basis.row(t, covariates)
+        psi = self._gain.row(t, covariates) if self._gain else None
         if self._last_useful > -math.inf and sample.time - self._last_useful > self.learn.max_gap:
             flags.append(q.EXTRAPOLATING)  # judged before this sample teaches anything
         learned, check_error, z = self._learn(sample, t, phi, psi, stale="input_stale" in flags)
         if learned:
             self._last_useful = sample.time
-        result = self._correct(sample, t, phi, psi, covariates, flags, learned)
+        fit = self._read_fit()
+        result = self._correct(sample, t, phi, psi, covariates, flags, learned, fit)
         self._track_means(sample.time, covariates)
+        health = self._health(flags, phi, psi, fit)
         if self._established():
-            drift, rate = self._drift_at_means(t)
+            drift, rate = self._drift_at_means(t, fit)
             events = self.alerts.observe(
                 result,
                 drift=drift,
                 rate=rate,
                 z=z,
                 check_error=check_error,
-                forecast=self._forecaster(),
-                health=self._health(flags, phi, psi),
+                forecast=self._forecaster(fit),
+                health=health,
             )
         else:  # an untrained model's drift and residuals say nothing about the sensor
             events = self.alerts.observe(
@@ -222,9 +247,21 @@ class Channel:
                 z=None,
                 check_error=None,
                 forecast=None,
-                health=self._health(flags, phi, psi),
+                health=health,
             )
         return result, events
+
+    def _read_fit(self) -> _Fit:
+        estimator = self._estimator
+        covariance = estimator.covariance
+        prior = np.diag(estimator.prior_weight / estimator.prior_sd**2)
+        middle = self._squared.information_matrix() + prior
+        return _Fit(
+            estimator.coefficients,
+            covariance,
+            covariance @ middle @ covariance,
+            estimator.residual_sd,
+        )
 
     def control(self, event: ControlEvent) -> list[Any]:
         """Apply a technician's action so it does not read as drift; returns alert clears.
@@ -272,12 +309,12 @@ class Channel:
         self._basis = self.config.basis.with_epoch(epoch)
         self._gain = self.config.gain.with_epoch(epoch) if self.config.gain else None
 
-    def _covariates(self, time: float) -> tuple[dict[str, Array], list[str], bool]:
+    def _covariates(self, time: float) -> tuple[dict[str, float], list[str], bool]:
         """Inputs the basis needs: (values, flags, missing). A stale input's last value is
         used and flagged; one never seen makes the reading uncorrectable (QARTOD 9)."""
         assert self._basis is not None
         needed = self._basis.variables | (self._gain.variables if self._gain else frozenset())
-        values: dict[str, Array] = {}
+        values: dict[str, float] = {}
         flags: list[str] = []
         for name in sorted(needed):
             lookup = self._inputs.lookup(name, time)
@@ -285,7 +322,7 @@ class Channel:
                 return {}, [q.INPUT_STALE], True
             if not lookup.fresh:
                 flags.append(q.INPUT_STALE)
-            values[name] = np.array([lookup.value])
+            values[name] = lookup.value
         return values, sorted(set(flags)), False
 
     def _learn(
@@ -353,18 +390,6 @@ class Channel:
             prior_sd=SQUARED_PRIOR_SD,
         )
 
-    def _baseline_variances(self, gradients: Array) -> Array:
-        """Var(gθ̂)/σ² for each row g of `gradients`: the sandwich gᵀP·(FᵀW²F + prior)·Pg.
-
-        The prior enters as in the estimate (once, at its current weight), so the bound by
-        the prior's variance is kept."""
-        estimator = self._estimator
-        pg = gradients @ estimator.covariance
-        prior = np.diag(estimator.prior_weight / estimator.prior_sd**2)
-        middle = self._squared.information_matrix() + prior
-        variances: Array = np.einsum("ij,jk,ik->i", pg, middle, pg)
-        return variances
-
     def _established(self) -> bool:
         return self._estimator.effective_n >= self._min_samples
 
@@ -381,7 +406,7 @@ class Channel:
         if set(self._input_means) < self._basis.variables:
             self._reset_estimators()  # never saw the inputs: the shape is unknown anyway
             return
-        drift, _ = self._drift_at_means(time - (self._epoch or 0.0))
+        drift, _ = self._drift_at_means(time - (self._epoch or 0.0), self._read_fit())
         index = self._gain_size + self._basis.names.index("constant")
         self._estimator.shift(index, -drift)
         self._squared.shift(index, -drift)
@@ -394,22 +419,21 @@ class Channel:
         t: float,
         phi: Array,
         psi: Array | None,
-        covariates: dict[str, Array],
+        covariates: dict[str, float],
         flags: list[str],
         learned: bool,
+        fit: _Fit,
     ) -> Corrected:
         assert self._basis is not None
-        estimator = self._estimator
-        theta = estimator.coefficients
+        theta = fit.theta
         offset_theta = theta[self._gain_size :]
         baseline = float(phi @ offset_theta)
-        slope = self._basis.derivative(np.array([t]), covariates)[0]
-        drift_rate = float(slope @ offset_theta)
-        sd = estimator.residual_sd if math.isfinite(estimator.residual_sd) else math.nan
+        drift_rate = float(self._basis.slope(t, covariates) @ offset_theta)
         flags = list(flags)
-        if not self._established():
+        established = self._established()
+        if not established:
             flags.append(q.LEARNING)
-        if self._established() and self._condition_number() > self.config.ill_conditioned_above:
+        if established and self._condition_number() > self.config.ill_conditioned_above:
             flags.append(q.ILL_CONDITIONED)  # while learning, too few samples is expected
         gain = 1.0
         if psi is None:
@@ -420,8 +444,7 @@ class Channel:
             corrected = (sample.value - baseline) / gain if gain != 0 else math.nan
             # delta method: d corrected/d a = −corrected·ψ/g, d corrected/d θ = −φ/g
             gradient = np.concatenate([corrected * psi, phi]) / gain
-        variance = float(self._baseline_variances(gradient[None, :])[0])
-        uncertainty = sd * math.sqrt(max(variance, 0.0))
+        uncertainty = fit.uncertainty(gradient)
         corrected = self._capped(sample.value, corrected, flags)
         quality, code = q.summarise(flags)
         return Corrected(
@@ -436,7 +459,7 @@ class Channel:
             gain=gain if psi is not None else None,
             drift_rate=drift_rate,
             learned=learned,
-            coefficients=theta.copy(),
+            coefficients=theta,
         )
 
     def _condition_number(self) -> float:
@@ -474,7 +497,7 @@ class Channel:
             False,
         )
 
-    def _track_means(self, time: float, covariates: dict[str, Array]) -> None:
+    def _track_means(self, time: float, covariates: dict[str, float]) -> None:
         """Smoothed inputs at which drift is judged: a compensated cross-sensitivity's daily
         swing is the model working, not the sensor drifting. Two cascaded exponential means
         (time constant INPUT_MEAN_TAU each) cut a daily cycle to 1/(1 + (2π·τ/24 h)²) ≈ 2.5 %
@@ -483,18 +506,14 @@ class Channel:
         if self._means_time is not None:
             weight = 1.0 - math.exp(-(time - self._means_time) / INPUT_MEAN_TAU)
         self._means_time = time
-        for name, array in covariates.items():
-            value = float(array[0])
+        for name, value in covariates.items():
             first = self._input_stage1.get(name, value)
             first += weight * (value - first)
             self._input_stage1[name] = first
             previous = self._input_means.get(name, value)
             self._input_means[name] = previous + weight * (first - previous)
 
-    def _held_inputs(self, size: int) -> dict[str, Array]:
-        return {name: np.full(size, mean) for name, mean in self._input_means.items()}
-
-    def _drift_at_means(self, t: float) -> tuple[float, float]:
+    def _drift_at_means(self, t: float, fit: _Fit) -> tuple[float, float]:
         """Drift and drift rate now, with every input at its running mean.
 
         The rate is reported as its conservative magnitude |rate| − RATE_Z·u(rate) (zero if
@@ -503,28 +522,22 @@ class Channel:
         drift is significantly that fast.
         """
         assert self._basis is not None
-        times = np.array([t])
-        theta = self._estimator.coefficients[self._gain_size :]
-        held = self._held_inputs(1)
-        drift = float(self._basis.evaluate(times, held)[0] @ theta)
-        slope = self._basis.derivative(times, held)[0]
+        theta = fit.theta[self._gain_size :]
+        drift = float(self._basis.row(t, self._input_means) @ theta)
+        slope = self._basis.slope(t, self._input_means)
         rate = float(slope @ theta)
-        full = np.zeros((1, self.n_terms))
-        full[0, self._gain_size :] = slope
-        spread = self._estimator.residual_sd * math.sqrt(
-            max(float(self._baseline_variances(full)[0]), 0.0)
-        )
+        full = np.zeros(self.n_terms)
+        full[self._gain_size :] = slope
+        spread = fit.uncertainty(full)
         if not math.isfinite(spread):
             return drift, 0.0
         return drift, math.copysign(max(0.0, abs(rate) - RATE_Z * spread), rate)
 
-    def _forecaster(self) -> Callable[[Array], tuple[Array, Array]]:
+    def _forecaster(self, fit: _Fit) -> Callable[[Array], tuple[Array, Array]]:
         """Predicted drift and its SD at future (absolute) times, inputs at their means."""
         basis, start = self._basis, self._gain_size
         epoch = self._epoch or 0.0
         held_at = dict(self._input_means)
-        theta = self._estimator.coefficients[start:]
-        sd = self._estimator.residual_sd
 
         def predict(times: Array) -> tuple[Array, Array]:
             assert basis is not None
@@ -532,8 +545,7 @@ class Channel:
             rows = basis.evaluate(times - epoch, held)
             full = np.zeros((rows.shape[0], self.n_terms))
             full[:, start:] = rows
-            spread = np.maximum(self._baseline_variances(full), 0.0)
-            return rows @ theta, sd * np.sqrt(spread)
+            return rows @ fit.theta[start:], fit.sd * np.sqrt(fit.variances(full))
 
         return predict
 
@@ -544,28 +556,28 @@ class Channel:
         if limit is None or self._basis is None or not math.isfinite(self._last_time):
             return None
         times = np.linspace(self._last_time, self._last_time + horizon, FORECAST_POINTS)
-        mean, spread = self._forecaster()(times)
+        mean, spread = self._forecaster(self._read_fit())(times)
         if not (np.all(np.isfinite(mean)) and np.all(np.isfinite(spread))):
             return None
         z = NormalDist().inv_cdf(0.5 + confidence / 2)
         return crossing_time(times, mean, spread, limit, z)
 
-    def _health(self, flags: list[str], phi: Array, psi: Array | None) -> list[str]:
+    def _health(self, flags: list[str], phi: Array, psi: Array | None, fit: _Fit) -> list[str]:
         problems = [flag for flag in flags if flag in (q.INPUT_STALE, q.ILL_CONDITIONED)]
         if self._last_time - self._last_useful > self.learn.max_gap and self._established():
             problems.append("no_useful_sample")
-        if self._wound_up(phi, psi):
+        if self._wound_up(phi, psi, fit):
             problems.append("wind_up")
         return problems
 
-    def _wound_up(self, phi: Array, psi: Array | None) -> bool:
+    def _wound_up(self, phi: Array, psi: Array | None, fit: _Fit) -> bool:
         """The data no longer pin the baseline down: its variance has grown back to a quarter
         of what the prior alone allows (the prior itself bounds it, see the estimator)."""
         if self._estimator.effective_n < self._min_samples:
             return False  # still learning: that is the 'learning' flag, not wind-up
         row = phi if psi is None else np.concatenate([psi, phi])
         prior_only = float(np.sum((self._estimator.prior_sd * row) ** 2))
-        return self._estimator.variance(row) > 0.25 * prior_only
+        return float(row @ fit.covariance @ row) > 0.25 * prior_only
 
     # --- state --------------------------------------------------------------------------
 
