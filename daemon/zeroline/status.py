@@ -1,0 +1,174 @@
+"""What the status page, /api and /metrics show: a read-only view of the daemon's channels.
+
+The HTTP layer never touches a `Channel` directly; the daemon implements `StatusSource`
+and the HTTP layer asks it for plain data (`ChannelStatus`, counters). That keeps the
+network thread away from the model and lets the HTTP tests use a fake source.
+
+Recent samples are kept per channel in a small ring (`History`) of numbers only, so a
+gateway with thousands of channels pays a fixed, small amount of memory for the page.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any, Protocol
+
+import numpy as np
+import numpy.typing as npt
+
+from zeroline.channel import Channel, Corrected
+
+Array = npt.NDArray[np.float64]
+HISTORY_LENGTH = 120
+HISTORY_FIELDS = ("time", "raw", "corrected", "baseline", "uncertainty")
+
+
+class History:
+    """The last `length` corrected readings of a channel, as numbers (NaN for missing)."""
+
+    def __init__(self, length: int = HISTORY_LENGTH) -> None:
+        self.length = length
+        self._rows = np.full((length, len(HISTORY_FIELDS)), math.nan)
+        self._next = 0
+        self._count = 0
+
+    def add(self, result: Corrected) -> None:
+        values = (result.time, result.raw, result.corrected, result.baseline, result.uncertainty)
+        self._rows[self._next] = [math.nan if v is None else v for v in values]
+        self._next = (self._next + 1) % self.length
+        self._count = min(self._count + 1, self.length)
+
+    def rows(self) -> Array:
+        """Oldest first, shape (n, 5): time, raw, corrected, baseline, uncertainty."""
+        if self._count < self.length:
+            return self._rows[: self._count].copy()
+        return np.concatenate([self._rows[self._next :], self._rows[: self._next]])
+
+    def as_dicts(self) -> list[dict[str, float | None]]:
+        return [
+            {
+                name: (None if math.isnan(v) else float(v))
+                for name, v in zip(HISTORY_FIELDS, row, strict=True)
+            }
+            for row in self.rows()
+        ]
+
+
+@dataclass(frozen=True)
+class ChannelStatus:
+    """One channel as the status page and /api/channels/<name> show it."""
+
+    name: str
+    topic: str
+    learn_mode: str
+    terms: tuple[str, ...]
+    coefficients: tuple[float, ...]
+    coefficient_uncertainties: tuple[float, ...]
+    last_time: float | None
+    raw: float | None
+    corrected: float | None
+    baseline: float | None
+    uncertainty: float | None
+    drift_rate: float | None
+    quality: str
+    quality_code: int
+    flags: tuple[str, ...]
+    drift_limit: float | None
+    rate_limit: float | None
+    active_alerts: tuple[Mapping[str, Any], ...]
+    recent: tuple[Mapping[str, float | None], ...] = field(default=())
+
+    def to_json(self, *, with_recent: bool = True) -> dict[str, Any]:
+        data: dict[str, Any] = {
+            "name": self.name,
+            "topic": self.topic,
+            "learn_mode": self.learn_mode,
+            "terms": list(self.terms),
+            "coefficients": [_finite(c) for c in self.coefficients],
+            "coefficient_uncertainties": [_finite(c) for c in self.coefficient_uncertainties],
+            "last_time": self.last_time,
+            "raw": _finite(self.raw),
+            "corrected": _finite(self.corrected),
+            "baseline": _finite(self.baseline),
+            "uncertainty": _finite(self.uncertainty),
+            "drift_rate": _finite(self.drift_rate),
+            "quality": self.quality,
+            "quality_code": self.quality_code,
+            "flags": list(self.flags),
+            "drift_limit": self.drift_limit,
+            "rate_limit": self.rate_limit,
+            "active_alerts": [dict(a) for a in self.active_alerts],
+        }
+        if with_recent:
+            data["recent"] = [dict(r) for r in self.recent]
+        return data
+
+
+def _finite(value: float | None) -> float | None:
+    return float(value) if value is not None and math.isfinite(value) else None
+
+
+def channel_status(
+    channel: Channel, last: Corrected | None, history: History | None
+) -> ChannelStatus:
+    """Build the view of one channel from its model, its last result and its history."""
+    config = channel.config
+    gain_names = tuple(f"gain:{n}" for n in config.gain.names) if config.gain else ()
+    names = gain_names + config.basis.names
+    estimator = channel.estimator
+    sd = estimator.residual_sd
+    spread = np.sqrt(np.clip(np.diag(estimator.covariance), 0.0, None)) * sd
+    return ChannelStatus(
+        name=channel.name,
+        topic=config.topic,
+        learn_mode=config.learn.mode,
+        terms=names,
+        coefficients=tuple(float(c) for c in estimator.coefficients),
+        coefficient_uncertainties=tuple(float(u) for u in spread),
+        last_time=last.time if last else None,
+        raw=last.raw if last else None,
+        corrected=last.corrected if last else None,
+        baseline=last.baseline if last else None,
+        uncertainty=last.uncertainty if last else None,
+        drift_rate=last.drift_rate if last else None,
+        quality=last.quality if last else "learning",
+        quality_code=last.quality_code if last else 2,
+        flags=last.flags if last else (),
+        drift_limit=config.alerts.drift_limit,
+        rate_limit=config.alerts.rate_limit,
+        active_alerts=tuple(e.to_json() for e in channel.alerts.active().values()),
+        recent=tuple(history.as_dicts()) if history else (),
+    )
+
+
+@dataclass(frozen=True)
+class Metric:
+    """One sample for /metrics: name, help text, kind (counter|gauge), labels, value."""
+
+    name: str
+    help: str
+    kind: str
+    value: float
+    labels: Mapping[str, str] = field(default_factory=dict)
+
+
+class StatusSource(Protocol):
+    """What the daemon offers the HTTP layer (all methods are thread-safe and cheap)."""
+
+    def health(self) -> dict[str, Any]:
+        """Liveness details: always answerable while the process runs."""
+        ...
+
+    def readiness(self) -> tuple[bool, dict[str, Any]]:
+        """(ready, details): connected to the broker and state loaded."""
+        ...
+
+    def channel_names(self) -> Sequence[str]: ...
+
+    def channel_status(self, name: str) -> ChannelStatus | None: ...
+
+    def metrics(self) -> Sequence[Metric]:
+        """Daemon counters and per-channel gauges (bounded label sets)."""
+        ...
