@@ -44,7 +44,8 @@ class History:
         """Oldest first, shape (n, 5): time, raw, corrected, baseline, uncertainty."""
         if self._count < self.length:
             return self._rows[: self._count].copy()
-        return np.concatenate([self._rows[self._next :], self._rows[: self._next]])
+        ordered: Array = np.concatenate([self._rows[self._next :], self._rows[: self._next]])
+        return ordered
 
     def as_dicts(self) -> list[dict[str, float | None]]:
         return [
