@@ -42,9 +42,11 @@ class History:
 
     def rows(self) -> Array:
         """Oldest first, shape (n, 5): time, raw, corrected, baseline, uncertainty."""
-        if self._count < self.length:
-            return self._rows[: self._count].copy()
-        ordered: Array = np.concatenate([self._rows[self._next :], self._rows[: self._next]])
+        ordered: Array = (
+            self._rows[: self._count].copy()
+            if self._count < self.length
+            else np.concatenate([self._rows[self._next :], self._rows[: self._next]])
+        )
         return ordered
 
     def as_dicts(self) -> list[dict[str, float | None]]:
