@@ -134,6 +134,59 @@ def load_cell(days: float = 30, step: float = 300, seed: int = 5) -> dict[str, A
     }
 
 
+def conductivity_fouling(
+    days: float = 28, step: float = 900, seed: int = 13, cleaned_at: float = 16.0
+) -> dict[str, Array]:
+    """A conductivity cell (µS/cm) in the same river kiosk: biofilm fouling lowers its
+    reading by a growing amount until a technician cleans it on day `cleaned_at`.
+
+    Weekly, a calibration standard of 1413 µS/cm is measured (`standard`, a payload field);
+    the channel learns the fouling offset from those checks and from nothing else.
+    """
+    rng = np.random.default_rng(seed)
+    time = START + np.arange(0, days * DAY, step)
+    age = (time - START) / DAY
+    since_clean = np.where(age < cleaned_at, age, age - cleaned_at)
+    truth = 480 + 60 * np.sin(2 * math.pi * age / 9.0) + rng.normal(0, 3, time.size)
+    drift = -1.5 * since_clean - 0.04 * since_clean**2
+    standard = np.full(time.size, np.nan)
+    checks = np.nonzero(np.diff(np.floor(age / 3.5), prepend=-1) > 0)[0]
+    standard[checks] = 1413.0
+    truth[checks] = 1413.0
+    value = truth + drift + rng.normal(0, 2.0, time.size)
+    return {
+        "time": time,
+        "value": value,
+        "standard": standard,
+        "truth_value": truth,
+        "truth_drift": drift,
+        "cleaned_at": np.array([START + cleaned_at * DAY]),
+    }
+
+
+def dissolved_oxygen(days: float = 28, step: float = 900, seed: int = 17) -> dict[str, Array]:
+    """An optical dissolved-oxygen sensor (mg/L) whose zero follows the water temperature
+    (0.08 mg/L per °C about 15 °C) and creeps slowly. Once a day, at 03:00 UTC, an air-purge
+    zero check reads it against a known 0 (`zero`, a payload field)."""
+    rng = np.random.default_rng(seed)
+    time = START + np.arange(0, days * DAY, step)
+    age = (time - START) / DAY
+    temperature = 13 + diurnal(time, 2.0, 16) + 2.0 * np.sin(2 * math.pi * age / 20)
+    truth = 9.5 + 1.2 * np.sin(2 * math.pi * (time % DAY) / DAY) + rng.normal(0, 0.05, time.size)
+    drift = 0.08 * (temperature - 15) + 0.02 * age
+    zero = np.where((time % DAY) == 3 * 3600, 0.0, np.nan)
+    truth = np.where(np.isnan(zero), truth, 0.0)
+    value = truth + drift + rng.normal(0, 0.03, time.size)
+    return {
+        "time": time,
+        "value": value,
+        "temperature": temperature,
+        "zero": zero,
+        "truth_value": truth,
+        "truth_drift": drift,
+    }
+
+
 def write_csv(path: str | Path, columns: Mapping[str, Array], names: list[str]) -> None:
     """Write the named columns as a log CSV (NaN as a blank cell)."""
     with open(path, "w", newline="", encoding="utf-8") as handle:
