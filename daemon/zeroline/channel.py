@@ -47,7 +47,6 @@ CONDITION_EVERY = 32
 FORECAST_POINTS = 200
 RATE_Z = 2.0  # a drift rate counts once it is this many standard uncertainties beyond zero
 INPUT_MEAN_TAU = 86400.0  # time constant of the input means that drift is judged at
-SQUARED_PRIOR_SD = 1e12  # the w² factor carries data only; the prior is added separately
 
 
 @dataclass(frozen=True)
@@ -123,6 +122,48 @@ class ControlEvent:
         return ControlEvent(float(time), str(event), str(mode))
 
 
+class SquaredInformation:
+    """FᵀW²F = Σ w²·4^(−age/h)·φφᵀ: the information of the data under squared weights,
+    for the sandwich covariance P·(FᵀW²F + prior)·P of the weighted estimate.
+
+    It is only ever used as a quadratic form (never solved), so a plain accumulation of
+    rank-one terms is numerically safe; squared weights forget twice as fast. In a sliding
+    window the estimator's own information is used instead (exact for unit weights).
+    """
+
+    def __init__(self, size: int, half_life: float | None) -> None:
+        self.half_life = half_life
+        self._matrix = np.zeros((size, size))
+        self._time: float | None = None
+
+    def add(self, row: Array, weight_squared: float, time: float) -> None:
+        if self.half_life is not None and self._time is not None:
+            self._matrix *= 4.0 ** (-(time - self._time) / self.half_life)
+        self._time = time
+        self._matrix += weight_squared * np.outer(row, row)
+
+    def matrix(self) -> Array:
+        return self._matrix
+
+    def reset(self) -> None:
+        self._matrix[:] = 0.0
+
+    def to_state(self) -> dict[str, Any]:
+        upper = self._matrix[np.triu_indices(self._matrix.shape[0])]
+        return {"half_life": self.half_life, "time": self._time, "upper": upper.tolist()}
+
+    @classmethod
+    def from_state(cls, state: Mapping[str, Any]) -> SquaredInformation:
+        upper = np.asarray(state["upper"], dtype=np.float64)
+        size = int((math.isqrt(8 * upper.size + 1) - 1) // 2)
+        result = cls(size, state["half_life"])
+        index = np.triu_indices(size)
+        result._matrix[index] = upper
+        result._matrix.T[index] = upper
+        result._time = state["time"]
+        return result
+
+
 @dataclass(frozen=True)
 class _Fit:
     """The estimator's state after a reading, read out once (each read-out costs solves).
@@ -157,7 +198,7 @@ class Channel:
         self._gain_size = config.gain.size if config.gain is not None else 0
         self._min_samples = config.learn.min_samples or 2 * self.n_terms
         self._estimator = self._new_estimator()
-        self._squared = self._new_squared_weights()
+        self._squared = SquaredInformation(self.n_terms, config.memory.half_life)
         self._inputs = InputCache({i.name: i.max_age for i in config.inputs.values()})
         self._epoch: float | None = config.epoch
         self._basis: Basis | None = None
@@ -255,7 +296,11 @@ class Channel:
         estimator = self._estimator
         covariance = estimator.covariance
         prior = np.diag(estimator.prior_weight / estimator.prior_sd**2)
-        middle = self._squared.information_matrix() + prior
+        middle = (
+            estimator.information_matrix()  # unit weights in a window: FᵀW²F = FᵀWF
+            if self.config.memory.window is not None
+            else self._squared.matrix() + prior
+        )
         return _Fit(
             estimator.coefficients,
             covariance,
@@ -272,7 +317,7 @@ class Channel:
         """
         if event.event == "replaced":
             self._estimator = self._new_estimator()
-            self._squared = self._new_squared_weights()
+            self._squared = SquaredInformation(self.n_terms, self.config.memory.half_life)
             self._epoch, self._basis, self._gain = self.config.epoch, None, None
             if self._epoch is not None:
                 self._bind(self._epoch)
@@ -342,7 +387,7 @@ class Channel:
         established = self._established()
         weight = self._weight(target - self._estimator.predict(row))
         innovation = self._estimator.update(row, target, weight, t)
-        self._squared.update(row, target, weight * weight, t)
+        self._squared.add(row, weight * weight, t)
         if not established:
             check_error = None  # an untrained model's error says nothing about the sensor
         return True, check_error, _standardised(innovation)
@@ -378,18 +423,6 @@ class Channel:
             weight *= self.learn.huber_k * sd / abs(residual)
         return weight
 
-    def _new_squared_weights(self) -> RecursiveEstimator:
-        """Information under squared weights (w², forgetting twice as fast), for the
-        sandwich covariance of the weighted estimate: P·(FᵀW²F)·P. P alone overstates the
-        variance of a forgetting estimate by up to 2× (for a constant model exactly 1+λ)."""
-        memory = self.config.memory
-        return RecursiveEstimator(
-            self.n_terms,
-            half_life=memory.half_life / 2 if memory.half_life else None,
-            window=memory.window,
-            prior_sd=SQUARED_PRIOR_SD,
-        )
-
     def _established(self) -> bool:
         return self._estimator.effective_n >= self._min_samples
 
@@ -409,7 +442,6 @@ class Channel:
         drift, _ = self._drift_at_means(time - (self._epoch or 0.0), self._read_fit())
         index = self._gain_size + self._basis.names.index("constant")
         self._estimator.shift(index, -drift)
-        self._squared.shift(index, -drift)
 
     # --- correcting ---------------------------------------------------------------------
 
@@ -611,7 +643,7 @@ class Channel:
         self._input_stage1 = {k: float(v) for k, v in stage1.items()}
         self._input_means = {k: float(v) for k, v in means.items()}
         self._means_time = state["means_time"]
-        self._squared = RecursiveEstimator.from_state(state["squared"])
+        self._squared = SquaredInformation.from_state(state["squared"])
 
 
 def _standardised(innovation: Any) -> float | None:
