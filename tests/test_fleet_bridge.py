@@ -24,6 +24,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+
 from conftest import require_executable
 
 ROOT = Path(__file__).resolve().parent.parent

@@ -29,13 +29,14 @@ a plot is asked for, with the Agg backend (files only, no display needed on a ga
 from __future__ import annotations
 
 import datetime
+import importlib
 import math
 import os
 from array import array
 from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import numpy.typing as npt
@@ -348,15 +349,12 @@ def _legend_for_alerts(axes: Axes, events: list[AlertEvent]) -> None:
 
 
 def _time_axis(axes: Axes) -> None:
-    import matplotlib.dates as mdates
-
-    # matplotlib.dates ships without annotations for these two constructors.
-    locator = mdates.AutoDateLocator(tz=datetime.timezone.utc)  # type: ignore[no-untyped-call]
-    formatter = mdates.ConciseDateFormatter(  # type: ignore[no-untyped-call]
-        locator, tz=datetime.timezone.utc
-    )
+    # matplotlib.dates has no annotations for these constructors: use them untyped rather
+    # than an ignore that would depend on the installed matplotlib version.
+    dates: Any = importlib.import_module("matplotlib.dates")
+    locator = dates.AutoDateLocator(tz=datetime.timezone.utc)
     axes.xaxis.set_major_locator(locator)
-    axes.xaxis.set_major_formatter(formatter)
+    axes.xaxis.set_major_formatter(dates.ConciseDateFormatter(locator, tz=datetime.timezone.utc))
     axes.set_xlabel("time (UTC)")
 
 
