@@ -96,15 +96,12 @@ class Broker:
 class Fleet:
     """A gateway broker bridged to a central broker, from the deploy/ files."""
 
-    def __init__(self, folder: Path, program: str) -> None:
+    def __init__(self, folder: Path, program: str, made_certs: Path) -> None:
         self.folder = folder
         self.local_port, self.tls_port, self.central_port = (_free_port() for _ in range(3))
         certs = folder / "certs"
-        subprocess.run(
-            ["sh", str(DEPLOY / "mosquitto" / "make-certs.sh"), str(certs), "localhost"],
-            check=True,
-            capture_output=True,
-        )
+        shutil.copytree(made_certs, certs)
+        _readable_by_mosquitto(certs / "server.key", 0o640)
         self.ca = certs / "ca.crt"
         (folder / "conf.d").mkdir()
         for name in ("gateway-data", "central-data"):
@@ -257,16 +254,32 @@ class Fleet:
         raise AssertionError("the bridge did not connect:\n" + (self.folder / "gw.log").read_text())
 
 
+@pytest.fixture(scope="module")
+def certificates() -> Iterator[Path]:
+    """One CA and server certificate from make-certs.sh for the module (key generation is
+    the slow part of setting up the brokers)."""
+    require_executable("openssl", "openssl")
+    folder = Path(tempfile.mkdtemp(prefix="zeroline-certs-"))
+    try:
+        subprocess.run(
+            ["sh", str(DEPLOY / "mosquitto" / "make-certs.sh"), str(folder / "certs"), "localhost"],
+            check=True,
+            capture_output=True,
+        )
+        yield folder / "certs"
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
 @pytest.fixture
-def fleet() -> Iterator[Fleet]:
+def fleet(certificates: Path) -> Iterator[Fleet]:
     program = require_executable("mosquitto", "mosquitto")
     require_executable("mosquitto_pub", "mosquitto-clients")
-    require_executable("openssl", "openssl")
     # Not pytest's tmp_path: its parents are private to root, and mosquitto reads its files
     # as user mosquitto.
     folder = Path(tempfile.mkdtemp(prefix="zeroline-fleet-"))
     folder.chmod(0o755)
-    made = Fleet(folder, program)
+    made = Fleet(folder, program, certificates)
     try:
         made.central.start()
         made.gateway.start()
@@ -354,7 +367,8 @@ def test_gateway_broker_needs_a_password_and_serves_tls(fleet: Fleet) -> None:
 def test_bridge_namespaces_and_queues_while_central_is_down(fleet: Fleet) -> None:
     """bridge.conf: zeroline/... on the gateway arrives centrally as gw01/zeroline/... at
     QoS 1, other topics stay local, and a reading published while the central broker is
-    down is delivered after it comes back (persistent bridge session, gateway queue)."""
+    down is delivered after it comes back (persistent bridge session, gateway queue), at
+    least once."""
     fleet.wait_bridge_up()
     # A persistent central subscriber, so the central side queues for it across its restart.
     assert fleet.central_sub("gw01/zeroline/#", 0, client_id="fleet-archive") == ""
@@ -367,8 +381,16 @@ def test_bridge_namespaces_and_queues_while_central_is_down(fleet: Fleet) -> Non
     fleet.central.stop()
     assert fleet.publish_local(TOPIC, '{"corrected": 22.0}') == 0
     fleet.central.start()
-    later = fleet.central_sub("gw01/zeroline/#", 1, client_id="fleet-archive")
-    assert later.strip() == f'{CENTRAL_TOPIC} {{"corrected": 22.0}}'
+    # QoS 1 is at least once: the first reading may come again (its PUBACK can be lost when
+    # the subscriber leaves at once); zeroline's consumers skip such duplicates by time.
+    later = []
+    for _ in range(3):
+        line = fleet.central_sub("gw01/zeroline/#", 1, client_id="fleet-archive").strip()
+        later.append(line)
+        if line.endswith("22.0}"):
+            break
+    assert later[-1] == f'{CENTRAL_TOPIC} {{"corrected": 22.0}}', later
+    assert set(later[:-1]) <= {first.strip()}, later
 
 
 def test_control_events_come_in_from_the_central_side(fleet: Fleet) -> None:
