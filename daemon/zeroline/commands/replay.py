@@ -3,7 +3,8 @@
 Runs one channel's streaming pipeline over a recorded log (see `zeroline.replay`) and
 writes `time, raw, baseline, corrected, uncertainty, quality` (+ `c0…` with
 `--coefficients`) per processed row; alert events go to stderr, or to `--alerts FILE`, one
-JSON object a line. On a terminal a progress line shows rows/s and the time left.
+JSON object a line. `--plot FILE.png` also draws the run (`zeroline.plot`, optional
+matplotlib). On a terminal a progress line shows rows/s and the time left.
 """
 
 from __future__ import annotations
@@ -19,6 +20,7 @@ from zeroline.channel import Channel
 from zeroline.config import load_config
 from zeroline.csvdata import read_table
 from zeroline.errors import InputError
+from zeroline.plot import Trace, check_plot_path, draw_trace, require_matplotlib
 from zeroline.replay import ReplayCounts, read_events, replay, resolve_channel
 
 PROGRESS_EVERY = 0.5  # seconds between progress-line updates
@@ -46,6 +48,9 @@ def _float(value: float | None) -> str:
 
 
 def run(args: argparse.Namespace) -> int:
+    if args.plot:
+        require_matplotlib()  # before the replay, not after minutes of work
+        check_plot_path(args.plot)
     config = load_config(args.config)
     channel_config, name = resolve_channel(config, args.channel)
     table = read_table(args.data)
@@ -66,12 +71,15 @@ def run(args: argparse.Namespace) -> int:
         except OSError as error:
             raise InputError(f"{args.alerts}: cannot write ({error.strerror})") from None
     progress = _Progress(table.rows) if sys.stderr.isatty() else None
+    trace = Trace(learn_mode=channel_config.learn.mode) if args.plot else None
     with output:
         writer = csv.writer(output)
         writer.writerow(header)
         for step in replay(table, channel, events, counts):
             for event in step.events:
                 alerts_out.write(json.dumps(event.to_json()) + "\n")
+            if trace is not None:
+                trace.add(step)
             result = step.result
             if result is None:
                 continue
@@ -96,6 +104,8 @@ def run(args: argparse.Namespace) -> int:
         progress.finish(counts.rows)
     if alerts_out is not sys.stderr:
         alerts_out.close()
+    if trace is not None:
+        draw_trace(args.plot, name, trace)
     _summary(counts)
     return 0
 
