@@ -272,7 +272,8 @@ class TestMetrics:
         """Drift, uncertainty, rate, quality and one 0/1 gauge per contract alert rule."""
         found = families(request(server, "/metrics").body.decode())
         for name, status in fake.statuses.items():
-            assert sample_value(found["zeroline_channel_drift"], channel=name) == status.baseline
+            assert sample_value(found["zeroline_channel_drift"], channel=name) == status.drift
+            assert sample_value(found["zeroline_channel_baseline"], channel=name) == status.baseline
             assert (
                 sample_value(found["zeroline_channel_uncertainty"], channel=name)
                 == status.uncertainty
@@ -347,7 +348,8 @@ class TestRealChannels:
         silo = gateway.channel_status("silo-ref-cell")
         assert silo is not None
         drift = found["zeroline_channel_drift"]
-        assert sample_value(drift, channel="silo-ref-cell") == pytest.approx(silo.baseline)
+        assert silo.drift is not None
+        assert sample_value(drift, channel="silo-ref-cell") == pytest.approx(silo.drift)
         alert = found["zeroline_channel_alert_active"]
         assert sample_value(alert, channel="silo-ref-cell", rule="drift_limit") == 1
         assert sample_value(alert, channel="north-no2", rule="drift_limit") == 0

@@ -206,6 +206,7 @@ class Channel:
         self._last_time = -math.inf
         self._last_useful = -math.inf
         self._condition: float | None = None
+        self.last_drift: float | None = None  # at the inputs' means, as the alerts judge it
         self._input_means: dict[str, float] = {}
         self._input_stage1: dict[str, float] = {}
         self._means_time: float | None = None
@@ -271,6 +272,7 @@ class Channel:
         health = self._health(flags, phi, psi, fit)
         if self._established():
             drift, rate = self._drift_at_means(t, fit)
+            self.last_drift = drift
             events = self.alerts.observe(
                 result,
                 drift=drift,

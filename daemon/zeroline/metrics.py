@@ -111,7 +111,12 @@ def channel_gauges(status: ChannelStatus) -> list[Metric]:
     gauges = [
         (
             "zeroline_channel_drift",
-            "Current baseline (drift) estimate, in the raw units.",
+            "Drift as the alerts judge it: the baseline with inputs at their running means.",
+            status.drift,
+        ),
+        (
+            "zeroline_channel_baseline",
+            "Baseline at the last reading (its inputs as they were), raw units.",
             status.baseline,
         ),
         (

@@ -75,6 +75,7 @@ class ChannelStatus:
     baseline: float | None
     uncertainty: float | None
     drift_rate: float | None
+    drift: float | None
     quality: str
     quality_code: int
     flags: tuple[str, ...]
@@ -97,6 +98,7 @@ class ChannelStatus:
             "baseline": _finite(self.baseline),
             "uncertainty": _finite(self.uncertainty),
             "drift_rate": _finite(self.drift_rate),
+            "drift": _finite(self.drift),
             "quality": self.quality,
             "quality_code": self.quality_code,
             "flags": list(self.flags),
@@ -136,6 +138,7 @@ def channel_status(
         baseline=last.baseline if last else None,
         uncertainty=last.uncertainty if last else None,
         drift_rate=last.drift_rate if last else None,
+        drift=channel.last_drift,
         quality=last.quality if last else "learning",
         quality_code=last.quality_code if last else 2,
         flags=last.flags if last else (),

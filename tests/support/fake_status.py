@@ -52,6 +52,7 @@ def make_status(name: str, **overrides: Any) -> ChannelStatus:
         "baseline": 0.9,
         "uncertainty": 0.05,
         "drift_rate": 0.1 / 600.0,
+        "drift": 0.8,
         "quality": "ok",
         "quality_code": 1,
         "flags": (),
