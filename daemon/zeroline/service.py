@@ -297,7 +297,7 @@ class Service:
     def _process(self, channel: Channel, reading: Reading) -> None:
         assert reading.value is not None
         result, events = channel.process(Sample(reading.time, reading.value, reading.fields))
-        self.counters.add("processed")
+        self.counters.add("processed" if self._live else "replayed")
         self._publish(f"{self.prefix}/{channel.name}/corrected", result.to_json())
         self._publish_alerts(channel.name, events)
 
