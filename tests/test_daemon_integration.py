@@ -22,9 +22,9 @@ from typing import Any
 
 import numpy as np
 import pytest
+
 from conftest import ROOT, require_executable
 from support.broker import Mosquitto, Subscriber, publish_lines, publish_one, wait_until
-
 from zeroline.channel import Channel
 from zeroline.config import load_config
 
@@ -47,6 +47,16 @@ def mosquitto_bin() -> str:
 
 @pytest.fixture()
 def broker(mosquitto_bin: str) -> Iterator[Mosquitto]:
+    server = Mosquitto(mosquitto_bin)
+    server.start()
+    yield server
+    server.cleanup()
+
+
+@pytest.fixture()
+def persistent_broker(mosquitto_bin: str) -> Iterator[Mosquitto]:
+    """A broker that saves its sessions on every change, so it can be SIGKILLed and restarted
+    without losing what it had queued (slow: only for the broker-kill test)."""
     server = Mosquitto(mosquitto_bin, persistent=True)
     server.start()
     yield server
@@ -76,7 +86,7 @@ broker:
   inflight: 50
 {extra_broker}
 state: {{dir: {directory / "state"}, snapshot_every: 1s}}
-limits: {{queue: 1000, max_payload_bytes: 65536}}
+limits: {{queue: 200, max_payload_bytes: 65536}}
 logging: {{level: info}}
 channels:
   - name: "{{1}}-gas"
@@ -239,10 +249,11 @@ class TestRoundTrip:
 
 class TestRestarts:
     def test_broker_killed_mid_stream(
-        self, broker: Mosquitto, tmp_path: Path, daemon_factory: Any
+        self, persistent_broker: Mosquitto, tmp_path: Path, daemon_factory: Any
     ) -> None:
         """SIGKILL of the broker mid-stream: the daemon reconnects by itself; every reading is
         corrected, each to the replay's value (identical copies only from QoS 1 resends)."""
+        broker = persistent_broker
         config = write_config(tmp_path, broker)
         daemon = daemon_factory(config)
         daemon.start()
@@ -308,3 +319,189 @@ class TestRestarts:
         assert "restored 1 channel(s) from the snapshot" in daemon.new_log()
         duplicates = sum(len(c) - 1 for c in seen.values())
         print(f"\ndaemon kill: {duplicates} readings re-published after the restart")
+
+
+def bad_corpus(now: float) -> list[tuple[str, bytes, str]]:
+    """(topic, payload, expected reason) for every kind of bad input the issue lists."""
+    gas, senml = "site/a/gas", "site/a/senml"
+    return [
+        (gas, b'{"time": 1, "value"', "malformed_json"),
+        (gas, f'{{"time": {now}, "value": NaN}}'.encode(), "non_finite"),
+        (gas, f'{{"time": {now}, "value": -Infinity}}'.encode(), "non_finite"),
+        (gas, f'{{"time": {now}, "value": "12.5"}}'.encode(), "value_not_number"),
+        (gas, f'{{"time": {now}, "value": {{"v": 1}}}}'.encode(), "value_not_number"),
+        (gas, b'[[{"time": 1}]]', "not_an_object"),
+        (gas, b'{"time": 1, "value": ' + b"1" * (1 << 20) + b"}", "payload_too_large"),
+        (gas, b'{"time": 1000000000, "value": 1.0}', "time_too_old"),
+        (gas, f'{{"time": {now + 30 * 86400}, "value": 1.0}}'.encode(), "time_in_future"),
+        (gas, b"\xff\xfe\x00", "not_utf8"),
+        (senml, b'[{"n": "x", "v": "1"}]', "malformed_senml"),
+        (senml, b'{"n": "x", "v": 1}', "malformed_senml"),
+        (senml, b'[{"n": "x", "vs": "on"}]', "no_numeric_records"),
+        ("zeroline/no-such-channel/control", b'{"event": "recalibrated"}', "unknown_channel"),
+        ("zeroline/a-gas/control", b'{"event": "exploded"}', "bad_control"),
+    ]
+
+
+class TestBadInput:
+    def test_bad_payload_corpus(
+        self, broker: Mosquitto, tmp_path: Path, daemon_factory: Any
+    ) -> None:
+        """Every bad payload gets an error message with its reason; good readings around
+        them, duplicates and out-of-order ones included, are handled; the daemon stays up."""
+        config = write_config(tmp_path, broker)
+        daemon = daemon_factory(config)
+        daemon.start()
+        subscriber = Subscriber(broker, "zeroline/#")
+        time.sleep(0.2)
+        data = rows(40)
+        corpus = bad_corpus(data[-1]["time"])
+        expected_reasons = []
+        good = 0
+        for i, (topic, payload, reason) in enumerate(corpus):
+            publish_one(broker, "site/a/gas", json.dumps(data[2 * i]))
+            good += 1
+            publish_one(broker, topic, payload)
+            expected_reasons.append(reason)
+        publish_one(broker, "site/a/gas", json.dumps(data[2 * len(corpus)]))  # good
+        publish_one(broker, "site/a/gas", json.dumps(data[2 * len(corpus)]))  # duplicate
+        publish_one(broker, "site/a/gas", json.dumps(data[0]))  # out of order
+        good += 1
+        expected_reasons += ["not_newer", "not_newer"]
+        assert subscriber.wait_count("zeroline/error", len(expected_reasons), 20)
+        assert subscriber.wait_count("/a-gas/corrected", good, 20)
+        errors = [json.loads(p) for _, p in subscriber.messages("zeroline/error")]
+        assert [e["reason"] for e in errors] == expected_reasons
+        for error in errors:
+            assert error["detail"] and error["topic"] and len(error["payload"]) <= 200
+        assert len(subscriber.messages("/a-gas/corrected")) == good
+        assert daemon.alive()
+        assert daemon.terminate() == 0
+        assert '"errors": 17' in daemon.new_log()
+
+
+class TestSecurity:
+    def tls_broker(self, mosquitto_bin: str) -> Mosquitto:
+        server = Mosquitto(mosquitto_bin, tls=True, username="gw01", password="s3cret-Pw")
+        server.start()
+        return server
+
+    def test_tls_and_password_connect(
+        self, mosquitto_bin: str, tmp_path: Path, daemon_factory: Any
+    ) -> None:
+        """Right CA and credentials (password from a file): the daemon connects and works."""
+        server = self.tls_broker(mosquitto_bin)
+        try:
+            assert server.tls_files is not None
+            (tmp_path / "pass").write_text("s3cret-Pw\n")
+            config = write_config(
+                tmp_path,
+                server,
+                extra_broker=(
+                    f"  username: gw01\n  password_file: {tmp_path / 'pass'}\n"
+                    f"  tls: {{ca_file: {server.tls_files.ca_cert}}}\n"
+                ),
+            )
+            daemon = daemon_factory(config)
+            daemon.start()
+            subscriber = Subscriber(server, "zeroline/+/corrected")
+            time.sleep(0.2)
+            publish_lines(server, "site/a/gas", payload_lines(rows(5)))
+            assert subscriber.wait_count("/a-gas/corrected", 5, 10)
+            assert "s3cret" not in daemon.new_log()
+            assert daemon.terminate() == 0
+        finally:
+            server.cleanup()
+
+    @pytest.mark.parametrize("problem", ["wrong_ca", "wrong_password", "missing_env"])
+    def test_refuses_to_start_with_one_clear_line(
+        self, mosquitto_bin: str, tmp_path: Path, daemon_factory: Any, problem: str
+    ) -> None:
+        """Wrong CA, wrong password, unset password variable: exit 2, one line, no traceback."""
+        server = self.tls_broker(mosquitto_bin)
+        try:
+            assert server.tls_files is not None
+            ca = (
+                server.tls_files.other_ca_cert
+                if problem == "wrong_ca"
+                else server.tls_files.ca_cert
+            )
+            config = write_config(
+                tmp_path,
+                server,
+                extra_broker=(
+                    "  username: gw01\n  password_env: ZL_TEST_PASSWORD\n"
+                    f"  tls: {{ca_file: {ca}}}\n"
+                ),
+            )
+            env = (
+                {}
+                if problem == "missing_env"
+                else {"ZL_TEST_PASSWORD": "nope" if problem == "wrong_password" else "s3cret-Pw"}
+            )
+            environment = {k: v for k, v in os.environ.items() if k != "ZL_TEST_PASSWORD"}
+            result = subprocess.run(
+                [sys.executable, "-m", "zeroline.cli", "run", "-c", str(config)],
+                capture_output=True,
+                text=True,
+                timeout=60,
+                env={**environment, "PYTHONPATH": str(ROOT / "daemon"), **env},
+            )
+            assert result.returncode == 2, result.stderr
+            lines = [line for line in result.stderr.splitlines() if "error" in line.lower()]
+            assert len(lines) == 1 and lines[0].startswith("zeroline: error: "), result.stderr
+            assert "Traceback" not in result.stderr
+            word = {"wrong_ca": "TLS", "wrong_password": "refused", "missing_env": "not set"}
+            assert word[problem] in lines[0]
+            assert "nope" not in result.stderr
+        finally:
+            server.cleanup()
+
+
+class TestOverload:
+    def test_far_faster_than_processing_loses_nothing(
+        self, broker: Mosquitto, tmp_path: Path, daemon_factory: Any
+    ) -> None:
+        """3000 readings on 10 channels published at full speed: count in = count out, the
+        backlog drains, nothing is dropped (QoS 1, manual acks, broker flow control)."""
+        config = write_config(tmp_path, broker)
+        daemon = daemon_factory(config)
+        daemon.start()
+        subscriber = Subscriber(broker, "zeroline/+/corrected")
+        time.sleep(0.2)
+        per_channel = 300
+        data = rows(per_channel)
+        started = time.monotonic()
+        publishers = [
+            subprocess.Popen(
+                ["mosquitto_pub", *broker.client_args(), "-q", "1", "-t", f"site/s{k}/gas", "-l"],
+                stdin=subprocess.PIPE,
+                stdout=subprocess.DEVNULL,
+                stderr=subprocess.DEVNULL,
+            )
+            for k in range(10)
+        ]
+        lines = "".join(line + "\n" for line in payload_lines(data)).encode()
+        for publisher in publishers:
+            assert publisher.stdin is not None
+            publisher.stdin.write(lines)
+            publisher.stdin.close()
+        for publisher in publishers:
+            assert publisher.wait(60) == 0
+        published_s = time.monotonic() - started
+        total = 10 * per_channel
+        assert subscriber.wait_count("/corrected", total, 60), len(subscriber.messages())
+        drained_s = time.monotonic() - started
+        assert len(subscriber.messages("/corrected")) == total
+        for k in range(10):
+            times = [json.loads(p)["time"] for _, p in subscriber.messages(f"/s{k}-gas/corrected")]
+            assert times == [row["time"] for row in data]  # all, once, in order
+        assert daemon.terminate() == 0
+        counters = json.loads(daemon.new_log().split("stopped; counters: ")[1].splitlines()[0])
+        assert counters["queue_full_waits"] > 0  # back-pressure engaged, and nothing lost
+        assert counters["processed"] == counters["received"] == total
+        print(
+            f"\noverload: {total} published in {published_s:.2f} s "
+            f"({total / published_s:,.0f}/s); all corrected after {drained_s:.2f} s "
+            f"({total / drained_s:,.0f}/s through the daemon)"
+        )

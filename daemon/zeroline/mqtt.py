@@ -10,12 +10,11 @@ Delivery guarantees, and how paho is set up for them:
   message on arrival; the service calls `ack(message.token)` only once the message's effect
   is durable (see `zeroline.service`). Unacknowledged messages are what the broker
   redelivers after a reconnect or a restart of the daemon, so nothing received is lost.
-- **Flow control instead of a growing queue**: under MQTT 5 the CONNECT carries
-  `ReceiveMaximum = broker.inflight`, so the broker never has more than that many
-  unacknowledged messages out to us; under 3.1.1 the broker's own `max_inflight_messages`
-  plays that role. Withholding acknowledgements is therefore the back-pressure: a daemon
+- **Flow control**: under MQTT 5 the CONNECT carries `ReceiveMaximum = broker.inflight`
+  for brokers that honour it (Mosquitto 2.0.11 does not, once acknowledgements flow; the
+  service's bounded queue is what really pushes back, see `zeroline.service`). A daemon
   that falls behind makes the broker queue for it (Mosquitto: `max_queued_messages` must be
-  large, see deploy/mosquitto-notes.md) instead of dropping anything itself.
+  0 or large, see deploy/mosquitto-notes.md) instead of dropping anything itself.
 - **Persistent session**: MQTT 5 `clean_start=False` with `SessionExpiryInterval =
   broker.session_expiry`; 3.1.1 `clean_session=False`. Readings published while the daemon
   is down wait in the broker. Subscriptions are renewed on every connect anyway.

@@ -21,13 +21,23 @@ with the same values and time: at-least-once outputs). A crash between 3 and 4 g
 redelivery that the channel's time check skips (`not_newer`, counted): its outputs were
 already confirmed in 2. Either way the model applies every reading exactly once.
 
-Back-pressure. Nothing here ever drops a message to keep up. The broker may have at most
-`broker.inflight` unacknowledged messages out to us (MQTT 5 Receive Maximum; Mosquitto's
-`max_inflight_messages` under 3.1.1), and acknowledgements only follow processing, so a
-slow worker simply makes the broker hold the backlog. The queue's bound is at least twice
-that window; should a broker ignore it and fill the queue, the network thread waits
-(pauses reading) and the wait is counted. The worker never waits for the network thread
-while the queue is full, so the two cannot deadlock.
+Back-pressure. Nothing here ever drops a message to keep up. Two mechanisms:
+
+- the bounded queue (`limits.queue`): when it is full the network thread waits in
+  `_on_message`, i.e. stops reading the socket; TCP flow control then stops the broker,
+  which queues for us (Mosquitto: `max_queued_messages 0`, see deploy/mosquitto-notes.md).
+  This is the mechanism that actually holds: Mosquitto 2.0.11 was measured to ignore our
+  MQTT 5 Receive Maximum (and its own `max_inflight_messages`) once acknowledgements
+  flow: with a receive maximum of 50 and a slow acknowledger, 480 of 500 messages were
+  out to the client unacknowledged at once (it holds to the limit only while no
+  acknowledgement arrives at all).
+- the acknowledgement window: `broker.inflight` is sent as Receive Maximum, for brokers
+  that honour it, and processed-but-uncommitted messages are bounded by the queue size:
+  beyond it the worker waits for commits before taking more work.
+
+The worker never waits for the network thread while the queue is full (that thread may be
+blocked handing over a message, and it is the one that reads the broker's
+acknowledgements), so the two cannot deadlock.
 
 Commits are batched: when `broker.inflight // 2` messages are ready, when the oldest has
 waited `COMMIT_DELAY_S`, or when the queue is empty (one fsync per batch). A snapshot needs
@@ -74,6 +84,7 @@ JOURNAL_SNAPSHOT_RECORDS = 50_000  # a longer journal would slow a restart: snap
 STATS_EVERY_S = 1.0
 ERROR_PAYLOAD_CHARS = 200
 TICK_S = 0.02
+COMMIT_WAIT_S = 0.001
 
 
 class Counters:
@@ -136,7 +147,7 @@ class Service:
         self._worker: threading.Thread | None = None
         self.failed = threading.Event()
         self._bad_input = RateLimitedLogger(_log)
-        self._queue_full_logged = False
+        self._backlog_log = RateLimitedLogger(_log)
 
     # --- life cycle -----------------------------------------------------------------------
 
@@ -177,14 +188,11 @@ class Service:
             self._queue.put_nowait(work)
         except queue.Full:
             self.counters.add("queue_full_waits")
-            if not self._queue_full_logged:
-                self._queue_full_logged = True
-                _log.warning(
-                    "the queue is full (%d messages): pausing reading from the broker until "
-                    "the worker catches up; the broker is sending beyond broker.inflight "
-                    "(under MQTT 3.1.1 set Mosquitto's max_inflight_messages to it)",
-                    self._queue.maxsize,
-                )
+            self._backlog_log.warning(
+                "queue_full",
+                f"the queue is full ({self._queue.maxsize} messages): pausing reading from "
+                "the broker until the worker catches up (back-pressure, nothing is dropped)",
+            )
             self._queue.put(work)
 
     # --- worker ---------------------------------------------------------------------------
@@ -199,6 +207,11 @@ class Service:
             self.failed.set()
 
     def _step(self) -> None:
+        if len(self._awaiting) >= self._queue.maxsize and not self._queue.full():
+            # Too much processed but not yet committed: let the confirmations catch up.
+            self._commit(force=True)
+            time.sleep(COMMIT_WAIT_S)
+            return
         if (self._reload is not None or self._snapshot_due()) and self._quiesce():
             if self._reload is not None:
                 self._apply_reload()
