@@ -31,7 +31,7 @@ service's business (it starts them fresh and says so).
 >>> with tempfile.TemporaryDirectory() as directory:
 ...     store = StateStore(directory)
 ...     store.append_journal([{"s": 1, "t": "r"}])
-...     store.save_snapshot({"a": '{"state": 1}'}, {"journal_seq": 1})
+...     size = store.save_snapshot({"a": '{"state": 1}'}, {"journal_seq": 1})
 ...     store.load_snapshot()["channels"]["a"], list(store.read_journal(after=1))
 ({'state': 1}, [])
 """
