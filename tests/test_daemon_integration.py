@@ -505,3 +505,56 @@ class TestOverload:
             f"({total / published_s:,.0f}/s); all corrected after {drained_s:.2f} s "
             f"({total / drained_s:,.0f}/s through the daemon)"
         )
+
+
+class TestProtocolAndReload:
+    def test_mqtt_311_persistent_session(
+        self, broker: Mosquitto, tmp_path: Path, daemon_factory: Any
+    ) -> None:
+        """protocol 3.1.1: clean_session=False keeps readings published while it is down."""
+        config = write_config(tmp_path, broker, extra_broker='  protocol: "3.1.1"\n')
+        daemon = daemon_factory(config)
+        daemon.start()
+        assert "MQTT 3.1.1" in daemon.new_log()
+        subscriber = Subscriber(broker, "zeroline/+/corrected")
+        time.sleep(0.2)
+        data = rows(40)
+        publish_lines(broker, "site/a/gas", payload_lines(data[:20]))
+        assert subscriber.wait_count("/a-gas/corrected", 20, 10)
+        assert daemon.terminate() == 0
+        publish_lines(broker, "site/a/gas", payload_lines(data[20:]))  # while down
+        daemon.start()
+        assert subscriber.wait_count("/a-gas/corrected", 40, 10)
+        assert_matches_replay(
+            corrected_by_time(subscriber, "a-gas"), replay_reference(config, data, "a-gas")
+        )
+        assert daemon.terminate() == 0
+
+    def test_sighup_reloads_and_keeps_unchanged_models(
+        self, broker: Mosquitto, tmp_path: Path, daemon_factory: Any
+    ) -> None:
+        """SIGHUP with one template's basis changed: that channel starts fresh, the other
+        keeps its state; a broken config is refused and the running one kept."""
+        config = write_config(tmp_path, broker)
+        daemon = daemon_factory(config)
+        daemon.start()
+        subscriber = Subscriber(broker, "zeroline/+/corrected")
+        time.sleep(0.2)
+        data = rows(10)
+        publish_lines(broker, "site/a/gas", payload_lines(data))
+        publish_one(broker, "site/a/senml", json.dumps([{"n": "x", "v": 1.0}]))
+        assert subscriber.wait_count("/corrected", 11, 10)
+        original = config.read_text()
+        config.write_text(original.replace("channels:", "channels: [oops"))
+        assert daemon.process is not None
+        daemon.process.send_signal(signal.SIGHUP)
+        assert wait_until(lambda: "keeping the running config" in daemon.new_log(), 10)
+        changed = "    basis: [constant, {polynomial: {of: t, degree: 1, scale: 1d}}]\n"
+        config.write_text(original.replace("    basis: [constant]\n", changed))
+        daemon.process.send_signal(signal.SIGHUP)
+        assert wait_until(lambda: "config reloaded" in daemon.new_log(), 10), daemon.new_log()
+        assert "1 channel(s) kept their state, 1 start fresh, 0 dropped" in daemon.new_log()
+        publish_one(broker, "site/a/gas", json.dumps(rows(11)[10]))
+        assert subscriber.wait_count("/a-gas/corrected", 11, 10)
+        assert daemon.alive()
+        assert daemon.terminate() == 0

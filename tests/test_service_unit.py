@@ -338,3 +338,67 @@ class TestReload:
         assert service.table.channels["a-gas"].last_time == T0  # kept
         assert service.table.channels["a-ph"].last_time == -math.inf  # fresh
         service.stop()
+
+
+class TestOutputs:
+    def test_alerts_are_retained_on_the_channel_and_per_rule_topics(self, state_dir: Path) -> None:
+        """A drift beyond the limit: the event on <ch>/alert and <ch>/alert/drift_limit,
+        both retained, in the alert contract's shape."""
+        extra = "alerts: {drift_limit: 0.5, dwell: 0s}\n    learn: {min_samples: 4}"
+        broker = FakeBroker()
+        service = start(parse_config(config_text(state_dir, extra=extra)), broker, state_dir)
+        for i in range(60):
+            broker.deliver("site/a/gas", reading_payload(T0 + 3600.0 * i, 0.05 * i))
+        assert service.wait_idle(10)
+        retained = {topic: body for topic, body, retain in broker.published if retain}
+        event = retained["zeroline/a-gas/alert/drift_limit"]
+        assert event["state"] == "raised" and event["rule"] == "drift_limit"
+        assert set(event) == {
+            "time",
+            "channel",
+            "rule",
+            "state",
+            "value",
+            "limit",
+            "severity",
+            "message",
+        }
+        assert "zeroline/a-gas/alert" in retained
+        assert not any(retain for topic, _, retain in broker.published if "corrected" in topic)
+        service.stop()
+
+    def test_stats_are_published_retained(self, state_dir: Path) -> None:
+        """<prefix>/stats carries the counters (retained) for operators and tests."""
+        broker = FakeBroker()
+        service = start(parse_config(config_text(state_dir)), broker, state_dir)
+        broker.deliver("site/a/gas", "nonsense")
+        assert service.wait_idle(5)
+        assert service.wait_idle(3, lambda: bool(broker.on("zeroline/stats")))
+        stats = broker.on("zeroline/stats")[-1]
+        assert stats["errors.malformed_json"] == 1
+        service.stop()
+
+
+class TestLogs:
+    def test_json_lines_and_rate_limited_repeats(self) -> None:
+        """JSON format: one object a line; a repeated cause is logged once per interval."""
+        import io
+
+        from zeroline.logs import RateLimitedLogger, setup_logging
+
+        stream = io.StringIO()
+        root = logging.getLogger()
+        saved, level = list(root.handlers), root.level
+        setup_logging("json", "info", stream)
+        try:
+            limiter = RateLimitedLogger(logging.getLogger("zeroline.test"), interval_s=60)
+            for _ in range(5):
+                limiter.warning("bad", "bad input on x")
+        finally:
+            root.handlers[:] = saved
+            root.setLevel(level)
+        lines = stream.getvalue().splitlines()
+        assert len(lines) == 1
+        entry = json.loads(lines[0])
+        assert entry["level"] == "warning" and entry["message"] == "bad input on x"
+        assert entry["time"].endswith("Z")

@@ -15,6 +15,7 @@ import threading
 from typing import Any
 
 from zeroline.config import ConfigProblemsError, load_config
+from zeroline.errors import UserError
 from zeroline.logs import setup_logging
 from zeroline.mqtt import BrokerSettings, PahoBroker
 from zeroline.service import Service
@@ -67,6 +68,9 @@ def _reload(path: str, service: Service) -> None:
         for line in problems.lines:
             _log.error("reload refused: %s", line)
         _log.error("keeping the running config")
+        return
+    except UserError as error:  # unreadable file, YAML syntax
+        _log.error("reload refused: %s; keeping the running config", error)
         return
     if dict(config.broker) != dict(service.config.broker):
         _log.warning("broker settings changed: they take effect at the next restart")
