@@ -127,8 +127,7 @@ class StateStore:
             os.replace(self.snapshot_path, target)
         except OSError as error:
             _log.error(
-                "state snapshot %s %s and cannot be moved aside (%s); starting from empty "
-                "models",
+                "state snapshot %s %s and cannot be moved aside (%s); starting from empty models",
                 self.snapshot_path,
                 problem,
                 error.strerror,
@@ -161,8 +160,7 @@ class StateStore:
         lines = data.split(b"\n")
         if lines and lines[-1]:
             _log.warning(
-                "state journal ends in a partial line (%d bytes, a write cut short); "
-                "ignoring it",
+                "state journal ends in a partial line (%d bytes, a write cut short); ignoring it",
                 len(lines[-1]),
             )
         for number, line in enumerate(lines[:-1], start=1):
@@ -171,8 +169,7 @@ class StateStore:
                 sequence = int(record["s"])
             except (ValueError, KeyError, TypeError):
                 _log.error(
-                    "state journal line %d is damaged; replay stops there (later records "
-                    "are lost)",
+                    "state journal line %d is damaged; replay stops there (later records are lost)",
                     number,
                 )
                 return
