@@ -402,3 +402,38 @@ class TestLogs:
         entry = json.loads(lines[0])
         assert entry["level"] == "warning" and entry["message"] == "bad input on x"
         assert entry["time"].endswith("Z")
+
+
+class TestSinks:
+    def test_sink_gets_every_reading_and_commits_before_the_ack(self, state_dir: Path) -> None:
+        """An OutputSink sees each corrected reading; its commit() precedes the broker ack."""
+        broker = FakeBroker()
+        order: list[str] = []
+
+        class Sink:
+            def __init__(self) -> None:
+                self.times: list[float] = []
+
+            def corrected(self, channel: Any, result: Any) -> None:
+                self.times.append(result.time)
+
+            def alert(self, channel: Any, event: Any) -> None:
+                pass
+
+            def commit(self) -> None:
+                order.append(f"commit after {len(broker.acked)} acks")
+
+            def close(self) -> None:
+                order.append("close")
+
+        sink = Sink()
+        service = Service(
+            parse_config(config_text(state_dir)), broker, StateStore(state_dir), sinks=[sink]
+        )
+        service.start()
+        broker.deliver("site/a/gas", reading_payload(T0, 1.0))
+        assert service.wait_idle(5)
+        assert sink.times == [T0]
+        assert order[0] == "commit after 0 acks" and broker.acked == [1]
+        service.stop()
+        assert order[-1] == "close"

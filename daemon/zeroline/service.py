@@ -49,6 +49,11 @@ Bad input of every kind becomes one message on `<prefix>/error` (`{"time", "topi
 "reason", "detail", "payload"}`, the payload cut to 200 characters), one counter per
 reason and a rate-limited log line; it is acknowledged like any other message.
 
+Other outputs (the time-series database, next) plug in as `OutputSink`s: they receive
+every live corrected reading and alert event, and their `commit()` runs before the journal
+fsync, so a sink that makes its data durable there (the tsdb spool's flush) inherits the
+same no-loss guarantee. Journal replay at start-up does not call them again.
+
 SIGHUP (`reload`): at a quiet moment the new routes replace the old; every channel whose
 template still exists and whose `model_key` did not change keeps its state, the others
 start fresh (logged), and the subscriptions are brought up to date.
@@ -64,9 +69,10 @@ import time
 from collections import deque
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Protocol
 
-from zeroline.channel import Channel, ControlEvent, Sample
+from zeroline.alerts import AlertEvent
+from zeroline.channel import Channel, ControlEvent, Corrected, Sample
 from zeroline.codecs import Reading
 from zeroline.config import Config
 from zeroline.errors import InputError
@@ -80,11 +86,25 @@ _log = logging.getLogger(__name__)
 
 COMMIT_DELAY_S = 0.1  # longest a processed message waits for its journal fsync
 QUIESCE_TIMEOUT_S = 2.0  # longest the worker pauses for a snapshot before trying later
-JOURNAL_SNAPSHOT_RECORDS = 50_000  # a longer journal would slow a restart: snapshot early
+JOURNAL_SNAPSHOT_RECORDS = 10_000  # replaying more at start-up would take over ~4 s
 STATS_EVERY_S = 1.0
 ERROR_PAYLOAD_CHARS = 200
 TICK_S = 0.02
 COMMIT_WAIT_S = 0.001
+
+
+class OutputSink(Protocol):
+    """Another destination for corrected readings and alert events (the time-series
+    database is the next one). Called on the worker thread, live processing only."""
+
+    def corrected(self, channel: Channel, result: Corrected) -> None: ...
+
+    def alert(self, channel: Channel, event: AlertEvent) -> None: ...
+
+    def commit(self) -> None:
+        """Make everything handed over so far durable: called before messages are acked."""
+
+    def close(self) -> None: ...
 
 
 class Counters:
@@ -120,10 +140,17 @@ class _Pending:
 class Service:
     """The daemon's core, independent of paho and of signals (see the module docstring)."""
 
-    def __init__(self, config: Config, broker: BrokerLink, store: StateStore) -> None:
+    def __init__(
+        self,
+        config: Config,
+        broker: BrokerLink,
+        store: StateStore,
+        sinks: Iterable[OutputSink] = (),
+    ) -> None:
         self.config = config
         self.broker = broker
         self.store = store
+        self.sinks = list(sinks)
         self.counters = Counters()
         self.prefix = config.output_prefix
         self.routes = Routes(config)
@@ -166,6 +193,8 @@ class Service:
         if self._worker is not None:
             self._worker.join(timeout)
         self.broker.close()
+        for sink in self.sinks:
+            sink.close()
         self.store.close()
         _log.info("stopped; counters: %s", json.dumps(self.counters.as_dict()))
 
@@ -312,7 +341,10 @@ class Service:
         result, events = channel.process(Sample(reading.time, reading.value, reading.fields))
         self.counters.add("processed" if self._live else "replayed")
         self._publish(f"{self.prefix}/{channel.name}/corrected", result.to_json())
-        self._publish_alerts(channel.name, events)
+        if self._live:
+            for sink in self.sinks:
+                sink.corrected(channel, result)
+        self._publish_alerts(channel, events)
 
     def _apply_control(self, part: ControlPart, message: Message | None) -> dict[str, Any] | None:
         channel = self.table.get(part.channel)
@@ -326,7 +358,7 @@ class Service:
             return None
         events = channel.control(part.event)
         self.counters.add("controls")
-        self._publish_alerts(channel.name, events)
+        self._publish_alerts(channel, events)
         self._dirty.add(channel.name)
         event = part.event
         return {"t": "c", "ch": channel.name, "e": [event.time, event.event, event.mode]}
@@ -356,12 +388,15 @@ class Service:
         self._last_seq = self.broker.publish(topic, data, retain=retain)
         self.counters.add("published")
 
-    def _publish_alerts(self, channel: str, events: Iterable[Any]) -> None:
+    def _publish_alerts(self, channel: Channel, events: Iterable[AlertEvent]) -> None:
         for event in events:
             body = event.to_json()
-            self._publish(f"{self.prefix}/{channel}/alert", body, retain=True)
-            self._publish(f"{self.prefix}/{channel}/alert/{event.rule}", body, retain=True)
+            self._publish(f"{self.prefix}/{channel.name}/alert", body, retain=True)
+            self._publish(f"{self.prefix}/{channel.name}/alert/{event.rule}", body, retain=True)
             self.counters.add("alerts")
+            if self._live:
+                for sink in self.sinks:
+                    sink.alert(channel, event)
 
     def _error(self, message: Message | None, reason: str, detail: str) -> None:
         if message is None:  # replaying the journal: the error was reported the first time
@@ -413,6 +448,8 @@ class Service:
             for record in pending.records:
                 self._journal_seq += 1
                 records.append({"s": self._journal_seq, **record})
+        for sink in self.sinks:
+            sink.commit()
         self.store.append_journal(records)  # OSError: the worker fails, nothing is acked
         self._journal_since_snapshot += len(records)
         self.counters.add("journal_records", len(records))
