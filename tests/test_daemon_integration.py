@@ -558,3 +558,21 @@ class TestProtocolAndReload:
         assert subscriber.wait_count("/a-gas/corrected", 11, 10)
         assert daemon.alive()
         assert daemon.terminate() == 0
+
+
+class TestStartup:
+    def test_waits_for_an_absent_broker(
+        self, mosquitto_bin: str, tmp_path: Path, daemon_factory: Any
+    ) -> None:
+        """A gateway often boots before its broker: the daemon retries, then connects."""
+        server = Mosquitto(mosquitto_bin)
+        try:
+            daemon = daemon_factory(write_config(tmp_path, server))
+            daemon.start(wait=False)
+            assert wait_until(lambda: "not reachable" in daemon.new_log(), 10)
+            assert daemon.alive()
+            server.start()
+            assert wait_until(lambda: "connected to the broker" in daemon.new_log(), 40)
+            assert daemon.terminate() == 0
+        finally:
+            server.cleanup()

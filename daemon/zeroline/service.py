@@ -169,6 +169,7 @@ class Service:
         self._last_stats = 0.0
         self._subscribed: set[str] = set()
         self._stop = threading.Event()
+        self._closed = threading.Event()
         self._reload: Config | None = None
         self._reload_lock = threading.Lock()
         self._worker: threading.Thread | None = None
@@ -192,6 +193,7 @@ class Service:
         self._stop.set()
         if self._worker is not None:
             self._worker.join(timeout)
+        self._closed.set()  # releases a network thread waiting on a full queue
         self.broker.close()
         for sink in self.sinks:
             sink.close()
@@ -211,6 +213,8 @@ class Service:
         self.broker.subscribe(sorted(topics))
 
     def _on_message(self, message: Message) -> None:
+        if self._closed.is_set():
+            return  # unacknowledged: the broker redelivers it to the next run
         self.counters.add("received")
         work = decode(message, self.routes)
         try:
@@ -222,7 +226,13 @@ class Service:
                 f"the queue is full ({self._queue.maxsize} messages): pausing reading from "
                 "the broker until the worker catches up (back-pressure, nothing is dropped)",
             )
-            self._queue.put(work)
+            while not self._closed.is_set():
+                try:
+                    self._queue.put(work, timeout=TICK_S)
+                    return
+                except queue.Full:
+                    continue
+            # Shutting down: left unacknowledged, so the broker redelivers it next run.
 
     # --- worker ---------------------------------------------------------------------------
 

@@ -42,10 +42,13 @@ def run(args: argparse.Namespace) -> int:
     store = StateStore(str(config.state["dir"]))
     service = Service(config, PahoBroker(settings), store)
     stop, reload = threading.Event(), threading.Event()
-    signal.signal(signal.SIGTERM, lambda *_: stop.set())
-    signal.signal(signal.SIGINT, lambda *_: stop.set())
+    # Until the service runs (it may be waiting for an absent broker) a stop request simply
+    # ends the process: nothing has been processed, the state on disk is as it was.
+    signal.signal(signal.SIGTERM, _interrupt)
     signal.signal(signal.SIGHUP, lambda *_: reload.set())
     service.start()
+    signal.signal(signal.SIGTERM, lambda *_: stop.set())
+    signal.signal(signal.SIGINT, lambda *_: stop.set())
     _log.info(
         "zeroline running: %d channel template(s), state in %s",
         len(config.channels),
@@ -59,6 +62,10 @@ def run(args: argparse.Namespace) -> int:
             _reload(args.config, service)
     service.stop()
     return EXIT_INTERNAL if service.failed.is_set() else EXIT_OK
+
+
+def _interrupt(signum: int, frame: Any) -> None:
+    raise KeyboardInterrupt  # the CLI turns it into exit 0
 
 
 def _reload(path: str, service: Service) -> None:
