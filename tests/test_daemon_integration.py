@@ -576,3 +576,40 @@ class TestStartup:
             assert daemon.terminate() == 0
         finally:
             server.cleanup()
+
+
+class TestClientCertificate:
+    @pytest.mark.parametrize("with_cert", [True, False])
+    def test_broker_requiring_a_client_certificate(
+        self, mosquitto_bin: str, tmp_path: Path, daemon_factory: Any, with_cert: bool
+    ) -> None:
+        """require_certificate: with cert_file/key_file the daemon works; without, exit 2."""
+        server = Mosquitto(mosquitto_bin, tls=True, require_client_cert=True)
+        server.start()
+        try:
+            files = server.tls_files
+            assert files is not None
+            tls = f"ca_file: {files.ca_cert}"
+            if with_cert:
+                tls += f", cert_file: {files.client_cert}, key_file: {files.client_key}"
+            config = write_config(tmp_path, server, extra_broker=f"  tls: {{{tls}}}\n")
+            if with_cert:
+                daemon = daemon_factory(config)
+                daemon.start()
+                assert daemon.terminate() == 0
+                return
+            started = time.monotonic()
+            result = subprocess.run(
+                [sys.executable, "-m", "zeroline.cli", "run", "-c", str(config)],
+                capture_output=True,
+                text=True,
+                timeout=60,
+                env={**os.environ, "PYTHONPATH": str(ROOT / "daemon")},
+            )
+            assert result.returncode == 2, result.stderr
+            assert "Traceback" not in result.stderr
+            [line] = [x for x in result.stderr.splitlines() if x.startswith("zeroline: error:")]
+            assert "client certificate" in line or "TLS" in line, line
+            assert time.monotonic() - started < 20
+        finally:
+            server.cleanup()

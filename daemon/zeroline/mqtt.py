@@ -319,10 +319,7 @@ class PahoBroker:
         if not ok:
             self._client.loop_stop()
             self._client.disconnect()
-            raise BrokerError(
-                f"broker {s.host}:{s.port} refused the connection: {reason}; check "
-                "broker.username and the password (password_file/password_env)"
-            )
+            raise BrokerError(reason)
 
     def subscribe(self, topics: Sequence[str]) -> None:
         if topics:
@@ -369,7 +366,12 @@ class PahoBroker:
         self, client: paho.Client, userdata: Any, flags: Any, reason: Any, properties: Any
     ) -> None:
         ok = not reason.is_failure
-        self._connack = (ok, str(reason))
+        s = self.settings
+        self._connack = (
+            ok,
+            f"broker {s.host}:{s.port} refused the connection: {reason}; check "
+            "broker.username and the password (password_file/password_env)",
+        )
         if ok:
             self._generation += 1
             if self._lost_at is not None:
@@ -398,6 +400,16 @@ class PahoBroker:
     def _handle_disconnect(
         self, client: paho.Client, userdata: Any, flags: Any, reason: Any, properties: Any
     ) -> None:
+        if not self._connack_event.is_set():  # closed before any CONNACK: fail fast
+            s = self.settings
+            self._connack = (
+                False,
+                f"broker {s.host}:{s.port} closed the connection before accepting it "
+                f"({reason}); if it requires a client certificate give broker.tls.cert_file "
+                "and key_file, otherwise check the TLS settings and credentials",
+            )
+            self._connack_event.set()
+            return
         if self.connected.is_set():
             self._lost_at = time.monotonic()
             self._problems.warning(

@@ -20,6 +20,10 @@ processes it again and publishes identical outputs (a consumer may see a correct
 with the same values and time: at-least-once outputs). A crash between 3 and 4 gives a
 redelivery that the channel's time check skips (`not_newer`, counted): its outputs were
 already confirmed in 2. Either way the model applies every reading exactly once.
+One exception: a bare-number payload carries no time (time = arrival), so a redelivery of
+one that was journaled but whose acknowledgement was lost (a crash between 3 and 4, or a
+broker dying before it got the PUBACK) is a new reading to the model; payloads that must
+count exactly once need a time (JSON or SenML).
 
 Back-pressure. Nothing here ever drops a message to keep up. Two mechanisms:
 

@@ -62,6 +62,8 @@ class TlsFiles:
     server_cert: Path
     server_key: Path
     other_ca_cert: Path  # a CA that did not sign the server certificate
+    client_cert: Path
+    client_key: Path
 
 
 def make_tls(directory: Path) -> TlsFiles:
@@ -104,6 +106,22 @@ def make_tls(directory: Path) -> TlsFiles:
         "-extfile",
         "san.cnf",
     )
+    openssl("req", *curve, "-keyout", "client.key", "-out", "client.csr", "-subj", "/CN=gw01")
+    openssl(
+        "x509",
+        "-req",
+        "-in",
+        "client.csr",
+        "-CA",
+        "ca.crt",
+        "-CAkey",
+        "ca.key",
+        "-CAcreateserial",
+        "-out",
+        "client.crt",
+        "-days",
+        "2",
+    )
     for name in ("ca.crt", "other-ca.crt", "server.crt", "server.key"):
         (directory / name).chmod(0o644)
         _open_to_mosquitto(directory / name)
@@ -112,6 +130,8 @@ def make_tls(directory: Path) -> TlsFiles:
         directory / "server.crt",
         directory / "server.key",
         directory / "other-ca.crt",
+        directory / "client.crt",
+        directory / "client.key",
     )
 
 
@@ -122,6 +142,7 @@ class Mosquitto:
     executable: str
     port: int = field(default_factory=free_port)
     tls: bool = False
+    require_client_cert: bool = False
     username: str | None = None
     password: str | None = None
     persistent: bool = False
@@ -162,6 +183,8 @@ class Mosquitto:
                 f"certfile {self.tls_files.server_cert}",
                 f"keyfile {self.tls_files.server_key}",
             ]
+            if self.require_client_cert:
+                lines.append("require_certificate true")
         if self.persistent:
             lines += [
                 "persistence true",
@@ -221,6 +244,9 @@ class Mosquitto:
             args += ["-u", self.username, "-P", self.password or ""]
         if self.tls_files is not None:
             args += ["--cafile", str(self.tls_files.ca_cert)]
+            if self.require_client_cert:
+                args += ["--cert", str(self.tls_files.client_cert)]
+                args += ["--key", str(self.tls_files.client_key)]
         return args
 
 
