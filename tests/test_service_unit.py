@@ -437,3 +437,30 @@ class TestSinks:
         assert order[0] == "commit after 0 acks" and broker.acked == [1]
         service.stop()
         assert order[-1] == "close"
+
+
+class TestDiskTrouble:
+    def test_journal_failure_holds_the_acks_and_retries(
+        self, state_dir: Path, monkeypatch: pytest.MonkeyPatch
+    ) -> None:
+        """A failing journal write acknowledges nothing; once it works, everything is acked."""
+        broker = FakeBroker()
+        service = start(parse_config(config_text(state_dir)), broker, state_dir)
+        real = service.store.append_journal
+        failures = {"left": 3}
+
+        def flaky(records: list[dict[str, Any]]) -> None:
+            if failures["left"]:
+                failures["left"] -= 1
+                raise OSError(28, "No space left on device")
+            real(records)
+
+        monkeypatch.setattr(service.store, "append_journal", flaky)
+        broker.deliver("site/a/gas", reading_payload(T0, 1.0))
+        broker.deliver("site/a/gas", reading_payload(T0 + 60, 1.1))
+        assert service.wait_idle(5)
+        assert service.counters.get("journal_errors") == 3
+        assert sorted(broker.acked) == [1, 2]
+        lines = (state_dir / "journal.jsonl").read_text().splitlines()
+        assert [json.loads(line)["s"] for line in lines] == [1, 2]
+        service.stop()

@@ -109,3 +109,25 @@ class TestJournal:
         store.append_journal([{"s": 1, "x": "y"}])
         assert os.path.getsize(tmp_path / "journal.jsonl") > 0
         assert json.loads((tmp_path / "journal.jsonl").read_text()) == {"s": 1, "x": "y"}
+
+    def test_failed_append_leaves_no_partial_batch(
+        self, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+    ) -> None:
+        """If the fsync fails (disk error) the batch is cut back out of the file."""
+        store = StateStore(tmp_path)
+        store.append_journal([{"s": 1}])
+        size = os.path.getsize(tmp_path / "journal.jsonl")
+
+        def failing_fsync(fd: int) -> None:
+            raise OSError(28, "No space left on device")
+
+        monkeypatch.setattr(os, "fsync", failing_fsync)
+        with pytest.raises(OSError):
+            store.append_journal([{"s": 2}, {"s": 3}])
+        monkeypatch.undo()
+        assert os.path.getsize(tmp_path / "journal.jsonl") == size
+
+    def test_a_repeated_sequence_number_is_applied_once(self, tmp_path: Path) -> None:
+        """Records are yielded in strictly increasing sequence: repeats are skipped."""
+        (tmp_path / "journal.jsonl").write_bytes(b'{"s": 1}\n{"s": 2}\n{"s": 2}\n{"s": 3}\n')
+        assert [r["s"] for r in StateStore(tmp_path).read_journal(after=0)] == [1, 2, 3]

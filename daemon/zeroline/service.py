@@ -456,15 +456,27 @@ class Service:
             force or ready >= self._commit_batch or waited >= COMMIT_DELAY_S or self._queue.empty()
         ):
             return
-        batch = [self._awaiting.popleft() for _ in range(ready)]
-        records = []
+        batch = [self._awaiting[i] for i in range(ready)]
+        first = self._journal_seq + 1
+        records: list[dict[str, Any]] = []
         for pending in batch:
             for record in pending.records:
-                self._journal_seq += 1
-                records.append({"s": self._journal_seq, **record})
-        for sink in self.sinks:
-            sink.commit()
-        self.store.append_journal(records)  # OSError: the worker fails, nothing is acked
+                records.append({"s": first + len(records), **record})
+        try:
+            for sink in self.sinks:
+                sink.commit()
+            self.store.append_journal(records)
+        except OSError as error:
+            # Disk full or failing: acknowledge nothing, so the broker keeps the messages and
+            # the full queue pushes back; retry on the next step.
+            self.counters.add("journal_errors")
+            self._backlog_log.warning(
+                "journal", f"cannot write the state journal ({error.strerror}); holding acks"
+            )
+            return
+        for _ in range(ready):
+            self._awaiting.popleft()
+        self._journal_seq += len(records)
         self._journal_since_snapshot += len(records)
         self.counters.add("journal_records", len(records))
         for pending in batch:

@@ -38,6 +38,7 @@ service's business (it starts them fresh and says so).
 
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
 import json
 import logging
@@ -76,7 +77,8 @@ class StateStore:
             )
         self.snapshot_path = self.directory / SNAPSHOT_NAME
         self.journal_path = self.directory / JOURNAL_NAME
-        self._journal = open(self.journal_path, "ab")  # noqa: SIM115 - kept open for appends
+        # Unbuffered, so a failed write leaves nothing pending that could land later.
+        self._journal = open(self.journal_path, "ab", buffering=0)  # noqa: SIM115 - kept open
         self.last_snapshot_s: float | None = None  # duration of the last save, for metrics
 
     # --- snapshot -------------------------------------------------------------------------
@@ -147,9 +149,18 @@ class StateStore:
         if not records:
             return
         data = "".join(json.dumps(record, separators=(",", ":")) + "\n" for record in records)
-        self._journal.write(data.encode())
-        self._journal.flush()
-        os.fsync(self._journal.fileno())
+        start = self._journal.seek(0, os.SEEK_END)
+        try:
+            view = memoryview(data.encode())
+            while view:  # unbuffered: a raw write may be partial
+                written = self._journal.write(view) or 0
+                view = view[written:]
+            os.fsync(self._journal.fileno())
+        except OSError:
+            # Leave no partial batch behind: the caller retries the same records later.
+            with contextlib.suppress(OSError):
+                self._journal.truncate(start)
+            raise
 
     def read_journal(self, after: int) -> Iterator[dict[str, Any]]:
         """Journal records with sequence number `s` above `after`, oldest first."""
@@ -174,12 +185,12 @@ class StateStore:
                 )
                 return
             if sequence > after:
+                after = sequence  # a record is never applied twice
                 yield record
 
     def reset_journal(self) -> None:
         """Empty the journal (after a snapshot that holds everything in it)."""
         self._journal.truncate(0)
-        self._journal.flush()
         os.fsync(self._journal.fileno())
 
     def close(self) -> None:
