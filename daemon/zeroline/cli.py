@@ -12,7 +12,7 @@ import traceback
 from collections.abc import Sequence
 
 from zeroline import __version__
-from zeroline.commands import check, demo, fit, replay
+from zeroline.commands import check, demo, fit, replay, run
 from zeroline.config import ConfigProblemsError
 from zeroline.errors import UserError
 
@@ -34,7 +34,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"zeroline {__version__}")
     commands = parser.add_subparsers(title="commands", metavar="COMMAND", parser_class=_Parser)
-    for module in (check, demo, fit, replay):
+    for module in (check, demo, fit, replay, run):
         module.add_parser(commands)
     return parser
 

@@ -59,6 +59,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from zeroline.errors import InputError
+from zeroline.logs import RateLimitedLogger as RateLimitedLogger  # re-exported for tsdb
 
 _log = logging.getLogger(__name__)
 
@@ -86,52 +87,6 @@ class Batch:
 
     def __len__(self) -> int:
         return len(self.lines)
-
-
-class RateLimitedLogger:
-    """Log a message at most once per `interval_s` for each cause key, counting the rest.
-
-    >>> quiet = logging.getLogger("doctest.quiet")
-    >>> quiet.addHandler(logging.NullHandler())
-    >>> limiter = RateLimitedLogger(quiet, interval_s=60.0)
-    >>> limiter.warning("disk", "spool disk full")
-    True
-    >>> limiter.warning("disk", "spool disk full")
-    False
-    """
-
-    def __init__(
-        self,
-        logger: logging.Logger,
-        interval_s: float = 60.0,
-        clock: Callable[[], float] = time.monotonic,
-    ) -> None:
-        self.interval_s = interval_s
-        self._logger = logger
-        self._clock = clock
-        self._last: dict[str, float] = {}
-        self._suppressed: dict[str, int] = {}
-        self._lock = threading.Lock()
-
-    def warning(self, cause: str, message: str) -> bool:
-        """Log `message` for `cause` unless it was logged recently; True if it was logged."""
-        with self._lock:
-            now = self._clock()
-            last = self._last.get(cause)
-            if last is not None and now - last < self.interval_s:
-                self._suppressed[cause] = self._suppressed.get(cause, 0) + 1
-                return False
-            suppressed = self._suppressed.pop(cause, 0)
-            self._last[cause] = now
-        suffix = f" ({suppressed} similar messages suppressed)" if suppressed else ""
-        self._logger.warning("%s%s", message, suffix)
-        return True
-
-    def forget(self, cause: str) -> None:
-        """Let the next message for `cause` through at once (the cause has gone away)."""
-        with self._lock:
-            self._last.pop(cause, None)
-            self._suppressed.pop(cause, None)
 
 
 def _default_segment_bytes(max_bytes: int) -> int:

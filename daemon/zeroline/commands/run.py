@@ -1,0 +1,84 @@
+"""`zeroline run -c CONFIG`: the daemon (see `zeroline.service` for how it works).
+
+The main thread owns the signals: SIGTERM and SIGINT stop the daemon cleanly (finish the
+outputs in transit, commit, snapshot, publish `offline`), SIGHUP reloads the config file;
+a config that no longer validates is reported line by line and the running one is kept.
+Start-up problems (config, state directory, TLS, credentials) are one line and exit 2.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import signal
+import threading
+from typing import Any
+
+from zeroline.config import ConfigProblemsError, load_config
+from zeroline.errors import UserError
+from zeroline.logs import setup_logging
+from zeroline.mqtt import BrokerSettings, PahoBroker
+from zeroline.service import Service
+from zeroline.state import StateStore
+
+_log = logging.getLogger("zeroline.run")
+
+EXIT_OK, EXIT_INTERNAL = 0, 1
+POLL_S = 0.2
+
+
+def add_parser(commands: Any) -> None:
+    parser = commands.add_parser("run", help="run the daemon")
+    parser.add_argument("-c", "--config", required=True, metavar="CONFIG", help="config file")
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    config = load_config(args.config)
+    setup_logging(str(config.logging["format"]), str(config.logging["level"]))
+    settings = BrokerSettings.from_config(
+        config.broker, config.output_prefix, int(config.limits["queue"])
+    )
+    store = StateStore(str(config.state["dir"]))
+    service = Service(config, PahoBroker(settings), store)
+    stop, reload = threading.Event(), threading.Event()
+    # Until the service runs (it may be waiting for an absent broker) a stop request simply
+    # ends the process: nothing has been processed, the state on disk is as it was.
+    signal.signal(signal.SIGTERM, _interrupt)
+    signal.signal(signal.SIGHUP, lambda *_: reload.set())
+    service.start()
+    signal.signal(signal.SIGTERM, lambda *_: stop.set())
+    signal.signal(signal.SIGINT, lambda *_: stop.set())
+    _log.info(
+        "zeroline running: %d channel template(s), state in %s",
+        len(config.channels),
+        config.state["dir"],
+    )
+    while not stop.wait(POLL_S):
+        if service.failed.is_set():
+            return EXIT_INTERNAL
+        if reload.is_set():
+            reload.clear()
+            _reload(args.config, service)
+    service.stop()
+    return EXIT_INTERNAL if service.failed.is_set() else EXIT_OK
+
+
+def _interrupt(signum: int, frame: Any) -> None:
+    raise KeyboardInterrupt  # the CLI turns it into exit 0
+
+
+def _reload(path: str, service: Service) -> None:
+    try:
+        config = load_config(path)
+    except ConfigProblemsError as problems:
+        for line in problems.lines:
+            _log.error("reload refused: %s", line)
+        _log.error("keeping the running config")
+        return
+    except UserError as error:  # unreadable file, YAML syntax
+        _log.error("reload refused: %s; keeping the running config", error)
+        return
+    if dict(config.broker) != dict(service.config.broker):
+        _log.warning("broker settings changed: they take effect at the next restart")
+    service.request_reload(config)

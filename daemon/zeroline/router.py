@@ -1,0 +1,308 @@
+"""From an MQTT topic to the channel (or input, or control) it is about.
+
+Two halves, for two threads:
+
+- `Routes` is built once per config and never changes, so the network thread may use it
+  without locks: `Routes.match(topic)` says what a topic is (a reading of a channel
+  template, an input of one, a control message) and carries the decoder to use. A channel
+  template's topic may hold `+` wildcards; the levels they match fill `{1}`, `{2}`… in the
+  channel's name and in its input topics (`site/+/no2/raw` with name `{1}-no2` makes
+  `a-no2` from `site/a/no2/raw`). An input topic template such as `site/{1}/met/temp` is
+  subscribed as `site/+/met/temp`.
+- `ChannelTable` is the worker thread's: it creates a channel the first time its topic is
+  seen, up to `limits.max_channels` (beyond it the reading is refused with reason
+  `channel_limit`, logged once per minute), and delivers input values. The latest value of
+  every concrete input topic is kept (bounded, oldest forgotten first) so an input that
+  arrives before its channel exists, or one shared by channels created later, is applied
+  when the channel is created; `Channel`'s own input cache ignores values older than what
+  it has, so re-applying one is harmless.
+
+>>> from zeroline.config import parse_config
+>>> config = parse_config('''
+... channels:
+...   - {name: "{1}-no2", topic: site/+/no2/raw, basis: [constant],
+...      inputs: {temp: {topic: "site/{1}/met/temp"}}}
+... ''')
+>>> routes = Routes(config)
+>>> [type(m).__name__ for m in routes.match("site/a/no2/raw")]
+['ReadingMatch']
+>>> routes.match("site/a/no2/raw")[0].wildcards
+('a',)
+>>> sorted(routes.subscriptions())
+['site/+/met/temp', 'site/+/no2/raw', 'zeroline/+/control']
+"""
+
+from __future__ import annotations
+
+import logging
+import re
+from collections import OrderedDict
+from collections.abc import Iterable
+from dataclasses import dataclass
+from typing import Any
+
+from zeroline.channel import Channel
+from zeroline.codecs import DecodeLimits, Decoder, make_decoder
+from zeroline.config import ChannelConfig, Config, InputConfig
+from zeroline.logs import RateLimitedLogger
+
+_log = logging.getLogger(__name__)
+
+PLACEHOLDER = re.compile(r"\{(\d+)\}")
+INPUTS_PER_CHANNEL_BOUND = 4  # latest input values kept: this many per allowed channel
+
+
+def fill(template: str, wildcards: tuple[str, ...]) -> str:
+    """`template` with {1}, {2}… replaced by the matched wildcard levels.
+
+    >>> fill("{1}-no2", ("a",))
+    'a-no2'
+    """
+    return PLACEHOLDER.sub(lambda m: wildcards[int(m.group(1)) - 1], template)
+
+
+@dataclass(frozen=True)
+class TopicPattern:
+    """A subscription topic with `+` levels; `match` returns the levels they matched."""
+
+    levels: tuple[str, ...]
+
+    @staticmethod
+    def parse(topic: str) -> TopicPattern:
+        return TopicPattern(tuple(topic.split("/")))
+
+    @property
+    def text(self) -> str:
+        return "/".join(self.levels)
+
+    def match(self, topic: str) -> tuple[str, ...] | None:
+        parts = topic.split("/")
+        if len(parts) != len(self.levels):
+            return None
+        captured = []
+        for want, got in zip(self.levels, parts, strict=True):
+            if want == "+":
+                if not got:
+                    return None  # an empty level would make an empty name part
+                captured.append(got)
+            elif want != got:
+                return None
+        return tuple(captured)
+
+
+def _template_regex(template: str) -> re.Pattern[str]:
+    """A regex matching the concrete topics of an input topic template."""
+    seen: set[str] = set()
+    pattern = ""
+    position = 0
+    for found in PLACEHOLDER.finditer(template):
+        pattern += re.escape(template[position : found.start()])
+        group = f"p{found.group(1)}"
+        pattern += f"(?P={group})" if group in seen else f"(?P<{group}>[^/]+)"
+        seen.add(group)
+        position = found.end()
+    return re.compile(pattern + re.escape(template[position:]))
+
+
+def _subscription(template: str) -> str:
+    """The subscription for an input topic template: placeholder levels become `+`."""
+    return "/".join("+" if PLACEHOLDER.search(level) else level for level in template.split("/"))
+
+
+@dataclass(frozen=True)
+class ReadingMatch:
+    """A raw reading of the channel `template` makes (or feeds) channel `name`."""
+
+    template: str
+    name: str
+    wildcards: tuple[str, ...]
+    decoder: Decoder
+    senml_name: str | None
+
+
+@dataclass(frozen=True)
+class InputMatch:
+    """A value of input `input_name` of channels of `template`."""
+
+    template: str
+    input_name: str
+    decoder: Decoder
+
+
+@dataclass(frozen=True)
+class ControlMatch:
+    """A technician's control event for channel `channel`."""
+
+    channel: str
+
+
+Match = ReadingMatch | InputMatch | ControlMatch
+
+
+@dataclass(frozen=True)
+class _ReadingRoute:
+    config: ChannelConfig
+    pattern: TopicPattern
+    decoder: Decoder
+
+
+@dataclass(frozen=True)
+class _InputRoute:
+    config: ChannelConfig
+    input: InputConfig
+    regex: re.Pattern[str]
+    subscription: str
+    decoder: Decoder
+
+
+class Routes:
+    """What each topic means under one config; immutable, safe to share between threads."""
+
+    def __init__(self, config: Config, limits: DecodeLimits | None = None) -> None:
+        self.config = config
+        self.prefix = config.output_prefix
+        limits = limits or DecodeLimits(max_bytes=int(config.limits["max_payload_bytes"]))
+        self.limits = limits
+        self.templates = {channel.name: channel for channel in config.channels}
+        self._readings = [
+            _ReadingRoute(
+                channel,
+                TopicPattern.parse(channel.topic),
+                make_decoder(
+                    channel.payload,
+                    time_field=channel.time_field,
+                    value_field=channel.value_field,
+                    time_unit=channel.time_unit,
+                    limits=limits,
+                ),
+            )
+            for channel in config.channels
+        ]
+        self._inputs = [
+            _InputRoute(
+                channel,
+                spec,
+                _template_regex(spec.topic),
+                _subscription(spec.topic),
+                make_decoder(spec.payload, limits=limits),
+            )
+            for channel in config.channels
+            for spec in channel.inputs.values()
+            if spec.topic is not None
+        ]
+        self.control = TopicPattern.parse(f"{self.prefix}/+/control")
+
+    def subscriptions(self) -> set[str]:
+        """Every topic filter to subscribe to."""
+        topics = {route.pattern.text for route in self._readings}
+        topics |= {route.subscription for route in self._inputs}
+        topics.add(self.control.text)
+        return topics
+
+    def match(self, topic: str) -> list[Match]:
+        """Everything `topic` is, in config order; empty for a topic no route knows."""
+        matches: list[Match] = []
+        for route in self._readings:
+            wildcards = route.pattern.match(topic)
+            if wildcards is not None:
+                name = fill(route.config.name, wildcards)
+                matches.append(
+                    ReadingMatch(
+                        route.config.name, name, wildcards, route.decoder, route.config.senml_name
+                    )
+                )
+        for entry in self._inputs:
+            if entry.regex.fullmatch(topic):
+                matches.append(InputMatch(entry.config.name, entry.input.name, entry.decoder))
+        control = self.control.match(topic)
+        if control is not None:
+            matches.append(ControlMatch(control[0]))
+        return matches
+
+
+class ChannelTable:
+    """The worker's channels, created on first sight within a bound, and their inputs."""
+
+    def __init__(self, routes: Routes, max_channels: int) -> None:
+        self.routes = routes
+        self.max_channels = max_channels
+        self.channels: dict[str, Channel] = {}
+        self.origin: dict[str, tuple[str, tuple[str, ...]]] = {}  # name → (template, wildcards)
+        self._input_index: dict[str, list[tuple[str, str]]] = {}  # topic → (channel, input)
+        self._latest_inputs: OrderedDict[str, tuple[float, float]] = OrderedDict()
+        self.max_inputs = INPUTS_PER_CHANNEL_BOUND * max_channels
+        self.inputs_forgotten = 0
+        self._limit_log = RateLimitedLogger(_log)
+
+    def get(self, name: str) -> Channel | None:
+        return self.channels.get(name)
+
+    def create(self, template: str, wildcards: tuple[str, ...]) -> Channel | None:
+        """The channel for `template` at `wildcards`, created if new; None at the bound."""
+        config = self.routes.templates[template]
+        name = fill(config.name, wildcards)
+        channel = self.channels.get(name)
+        if channel is not None:
+            return channel
+        if len(self.channels) >= self.max_channels:
+            self._limit_log.warning(
+                "channel_limit",
+                f"channel limit reached: {self.max_channels} channels exist, so {name!r} "
+                "is not created and its readings are refused (reason channel_limit); "
+                "raise limits.max_channels if the site really has more sensors",
+            )
+            return None
+        channel = Channel(config, name)
+        self._adopt(channel, template, wildcards)
+        return channel
+
+    def adopt(self, channel: Channel, template: str, wildcards: tuple[str, ...]) -> None:
+        """Add an existing channel (restored from a snapshot, or kept over a reload)."""
+        self._adopt(channel, template, wildcards)
+
+    def _adopt(self, channel: Channel, template: str, wildcards: tuple[str, ...]) -> None:
+        self.channels[channel.name] = channel
+        self.origin[channel.name] = (template, wildcards)
+        for spec in channel.config.inputs.values():
+            if spec.topic is None:
+                continue
+            topic = fill(spec.topic, wildcards)
+            self._input_index.setdefault(topic, []).append((channel.name, spec.name))
+            latest = self._latest_inputs.get(topic)
+            if latest is not None:
+                channel.set_input(spec.name, *latest)
+
+    def deliver_input(self, topic: str, time: float, value: float) -> list[str]:
+        """Give an input value to every channel that reads `topic`; returns their names."""
+        self._remember(topic, time, value)
+        targets = self._input_index.get(topic, [])
+        for channel_name, input_name in targets:
+            self.channels[channel_name].set_input(input_name, time, value)
+        return [channel_name for channel_name, _ in targets]
+
+    def _remember(self, topic: str, time: float, value: float) -> None:
+        current = self._latest_inputs.get(topic)
+        if current is not None and current[0] > time:
+            return
+        self._latest_inputs[topic] = (time, value)
+        self._latest_inputs.move_to_end(topic)
+        while len(self._latest_inputs) > self.max_inputs:
+            forgotten, _ = self._latest_inputs.popitem(last=False)
+            self.inputs_forgotten += 1
+            self._limit_log.warning(
+                "inputs_forgotten",
+                f"more than {self.max_inputs} input topics seen; forgetting the oldest "
+                f"({forgotten})",
+            )
+
+    def latest_inputs(self) -> dict[str, list[float]]:
+        return {topic: [t, v] for topic, (t, v) in self._latest_inputs.items()}
+
+    def load_latest_inputs(self, saved: Any) -> None:
+        if isinstance(saved, dict):
+            for topic, pair in saved.items():
+                if isinstance(pair, list) and len(pair) == 2:
+                    self._remember(str(topic), float(pair[0]), float(pair[1]))
+
+    def names(self) -> Iterable[str]:
+        return self.channels.keys()

@@ -1,0 +1,645 @@
+"""The daemon: a bounded queue between the network thread and one worker that runs channels.
+
+Threads. paho's network thread calls `Service._on_message`, which only decodes
+(`zeroline.intake`) and enqueues. One worker thread takes `Work` items in arrival order,
+feeds the channels (exactly as `zeroline.replay` does: inputs first, then the reading, so a
+daemon and a replay of the same rows agree to the last bit), publishes the outputs through
+the broker seam, and commits. Signals are the main thread's (`zeroline.commands.run`).
+
+No loss, no double counting. A QoS 1 message is acknowledged to the broker only when its
+effect is safe, in this order:
+
+1. the worker processes it and publishes its outputs (QoS 1);
+2. the broker acknowledges those outputs (`BrokerLink.confirmed`);
+3. the message's effect is appended to the state journal and fsync'ed (`zeroline.state`);
+4. only then the message is acknowledged.
+
+A crash (SIGKILL, power cut) before 3 loses nothing: the broker redelivers the message,
+and the restarted daemon, restored from snapshot + journal to the state before it,
+processes it again and publishes identical outputs (a consumer may see a correction twice,
+with the same values and time: at-least-once outputs). A crash between 3 and 4 gives a
+redelivery that the channel's time check skips (`not_newer`, counted): its outputs were
+already confirmed in 2. Either way the model applies every reading exactly once.
+One exception: a bare-number payload carries no time (time = arrival), so a redelivery of
+one that was journaled but whose acknowledgement was lost (a crash between 3 and 4, or a
+broker dying before it got the PUBACK) is a new reading to the model; payloads that must
+count exactly once need a time (JSON or SenML).
+
+Back-pressure. Nothing here ever drops a message to keep up. Two mechanisms:
+
+- the bounded queue (`limits.queue`): when it is full the network thread waits in
+  `_on_message`, i.e. stops reading the socket; TCP flow control then stops the broker,
+  which queues for us (Mosquitto: `max_queued_messages 0`, see deploy/mosquitto-notes.md).
+  This is the mechanism that actually holds: Mosquitto 2.0.11 was measured to ignore our
+  MQTT 5 Receive Maximum (and its own `max_inflight_messages`) once acknowledgements
+  flow: with a receive maximum of 50 and a slow acknowledger, 480 of 500 messages were
+  out to the client unacknowledged at once (it holds to the limit only while no
+  acknowledgement arrives at all).
+- the acknowledgement window: `broker.inflight` is sent as Receive Maximum, for brokers
+  that honour it, and processed-but-uncommitted messages are bounded by the queue size:
+  beyond it the worker waits for commits before taking more work.
+
+The worker never waits for the network thread while the queue is full (that thread may be
+blocked handing over a message, and it is the one that reads the broker's
+acknowledgements), so the two cannot deadlock.
+
+Commits are batched: when `broker.inflight // 2` messages are ready, when the oldest has
+waited `COMMIT_DELAY_S`, or when the queue is empty (one fsync per batch). A snapshot needs
+a quiet moment (no processed-but-uncommitted message, so snapshot and journal agree): when
+one is due the worker stops taking new work until the outputs in transit are confirmed, at
+most `QUIESCE_TIMEOUT_S`, and tries again later if the broker is away.
+
+Bad input of every kind becomes one message on `<prefix>/error` (`{"time", "topic",
+"reason", "detail", "payload"}`, the payload cut to 200 characters), one counter per
+reason and a rate-limited log line; it is acknowledged like any other message.
+
+Other outputs (the time-series database, next) plug in as `OutputSink`s: they receive
+every live corrected reading and alert event, and their `commit()` runs before the journal
+fsync, so a sink that makes its data durable there (the tsdb spool's flush) inherits the
+same no-loss guarantee. Journal replay at start-up does not call them again.
+
+SIGHUP (`reload`): at a quiet moment the new routes replace the old; every channel whose
+template still exists and whose `model_key` did not change keeps its state, the others
+start fresh (logged), and the subscriptions are brought up to date.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import queue
+import threading
+import time
+from collections import deque
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field
+from typing import Any, Protocol
+
+from zeroline.alerts import AlertEvent
+from zeroline.channel import Channel, ControlEvent, Corrected, Sample
+from zeroline.codecs import Reading
+from zeroline.config import Config
+from zeroline.errors import InputError
+from zeroline.intake import ControlPart, ErrorPart, InputPart, Part, ReadingPart, Work, decode
+from zeroline.logs import RateLimitedLogger
+from zeroline.mqtt import BrokerLink, Message
+from zeroline.router import ChannelTable, Routes, fill
+from zeroline.state import StateStore
+
+_log = logging.getLogger(__name__)
+
+COMMIT_DELAY_S = 0.1  # longest a processed message waits for its journal fsync
+QUIESCE_TIMEOUT_S = 2.0  # longest the worker pauses for a snapshot before trying later
+JOURNAL_SNAPSHOT_RECORDS = 10_000  # replaying more at start-up would take over ~4 s
+STATS_EVERY_S = 1.0
+ERROR_PAYLOAD_CHARS = 200
+TICK_S = 0.02
+COMMIT_WAIT_S = 0.001
+
+
+class OutputSink(Protocol):
+    """Another destination for corrected readings and alert events (the time-series
+    database is the next one). Called on the worker thread, live processing only."""
+
+    def corrected(self, channel: Channel, result: Corrected) -> None: ...
+
+    def alert(self, channel: Channel, event: AlertEvent) -> None: ...
+
+    def commit(self) -> None:
+        """Make everything handed over so far durable: called before messages are acked."""
+
+    def close(self) -> None: ...
+
+
+class Counters:
+    """Thread-safe named counts (received, processed, errors.<reason>, …)."""
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._counts: dict[str, int] = {}
+
+    def add(self, key: str, amount: int = 1) -> None:
+        with self._lock:
+            self._counts[key] = self._counts.get(key, 0) + amount
+
+    def get(self, key: str) -> int:
+        with self._lock:
+            return self._counts.get(key, 0)
+
+    def as_dict(self) -> dict[str, int]:
+        with self._lock:
+            return dict(sorted(self._counts.items()))
+
+
+@dataclass
+class _Pending:
+    """A processed message waiting for its outputs' confirmation and its journal fsync."""
+
+    token: Any
+    records: list[dict[str, Any]]
+    needs: int  # publish sequence number that must be confirmed first
+    since: float = field(default_factory=time.monotonic)
+
+
+class Service:
+    """The daemon's core, independent of paho and of signals (see the module docstring)."""
+
+    def __init__(
+        self,
+        config: Config,
+        broker: BrokerLink,
+        store: StateStore,
+        sinks: Iterable[OutputSink] = (),
+    ) -> None:
+        self.config = config
+        self.broker = broker
+        self.store = store
+        self.sinks = list(sinks)
+        self.counters = Counters()
+        self.prefix = config.output_prefix
+        self.routes = Routes(config)
+        self.table = ChannelTable(self.routes, int(config.limits["max_channels"]))
+        self.snapshot_every = float(config.state["snapshot_every"])
+        self._queue: queue.Queue[Work] = queue.Queue(maxsize=int(config.limits["queue"]))
+        self._awaiting: deque[_Pending] = deque()
+        self._commit_batch = max(1, int(config.broker["inflight"]) // 2)
+        self._live = False  # False while replaying the journal: no outputs then
+        self._last_seq = 0
+        self._journal_seq = 0
+        self._journal_since_snapshot = 0
+        self._dirty: set[str] = set()
+        self._state_text: dict[str, str] = {}
+        self._last_snapshot = time.monotonic()
+        self._last_stats = 0.0
+        self._subscribed: set[str] = set()
+        self._stop = threading.Event()
+        self._closed = threading.Event()
+        self._reload: Config | None = None
+        self._reload_lock = threading.Lock()
+        self._worker: threading.Thread | None = None
+        self.failed = threading.Event()
+        self._bad_input = RateLimitedLogger(_log)
+        self._backlog_log = RateLimitedLogger(_log)
+
+    # --- life cycle -----------------------------------------------------------------------
+
+    def start(self) -> None:
+        """Restore the state, start the worker, connect (BrokerError if refused)."""
+        self.restore()
+        self._live = True
+        self._worker = threading.Thread(target=self._run, name="zeroline-worker", daemon=True)
+        self._worker.start()
+        self.broker.connect(self._on_message, self._on_connect)
+
+    def stop(self, timeout: float = 10.0) -> None:
+        """Finish in-transit work, commit, snapshot, go offline. Unprocessed messages stay
+        unacknowledged: the broker redelivers them to the next run."""
+        self._stop.set()
+        if self._worker is not None:
+            self._worker.join(timeout)
+        self._closed.set()  # releases a network thread waiting on a full queue
+        self.broker.close()
+        for sink in self.sinks:
+            sink.close()
+        self.store.close()
+        _log.info("stopped; counters: %s", json.dumps(self.counters.as_dict()))
+
+    def request_reload(self, config: Config) -> None:
+        """Apply `config` at the worker's next quiet moment (called from the main thread)."""
+        with self._reload_lock:
+            self._reload = config
+
+    # --- network thread -------------------------------------------------------------------
+
+    def _on_connect(self) -> None:
+        topics = self.routes.subscriptions()
+        self._subscribed = set(topics)
+        self.broker.subscribe(sorted(topics))
+
+    def _on_message(self, message: Message) -> None:
+        if self._closed.is_set():
+            return  # unacknowledged: the broker redelivers it to the next run
+        self.counters.add("received")
+        work = decode(message, self.routes)
+        try:
+            self._queue.put_nowait(work)
+        except queue.Full:
+            self.counters.add("queue_full_waits")
+            self._backlog_log.warning(
+                "queue_full",
+                f"the queue is full ({self._queue.maxsize} messages): pausing reading from "
+                "the broker until the worker catches up (back-pressure, nothing is dropped)",
+            )
+            while not self._closed.is_set():
+                try:
+                    self._queue.put(work, timeout=TICK_S)
+                    return
+                except queue.Full:
+                    continue
+            # Shutting down: left unacknowledged, so the broker redelivers it next run.
+
+    # --- worker ---------------------------------------------------------------------------
+
+    def _run(self) -> None:
+        try:
+            while not self._stop.is_set():
+                self._step()
+            self._finish()
+        except Exception:
+            _log.exception("the worker failed; stopping (state up to the last commit is safe)")
+            self.failed.set()
+
+    def _step(self) -> None:
+        if len(self._awaiting) >= self._queue.maxsize and not self._queue.full():
+            # Too much processed but not yet committed: let the confirmations catch up.
+            self._commit(force=True)
+            time.sleep(COMMIT_WAIT_S)
+            return
+        if (self._reload is not None or self._snapshot_due()) and self._quiesce():
+            if self._reload is not None:
+                self._apply_reload()
+            self.snapshot()
+        try:
+            work = self._queue.get(timeout=TICK_S)
+        except queue.Empty:
+            work = None
+        if work is not None:
+            self._handle(work)
+        self._commit(force=False)
+        self._publish_stats()
+
+    def _finish(self) -> None:
+        if self._quiesce(timeout=QUIESCE_TIMEOUT_S * 2):
+            self.snapshot()
+        else:
+            _log.warning(
+                "outputs still unconfirmed at shutdown; skipping the final snapshot (the "
+                "broker redelivers the unacknowledged readings to the next run)"
+            )
+
+    def _handle(self, work: Work) -> None:
+        records: list[dict[str, Any]] = []
+        for part in work.parts:
+            try:
+                record = self._apply(part, work.message)
+            except Exception as error:  # a bug must cost one message, not the daemon
+                _log.exception("internal error on a message from %s", work.message.topic)
+                self._error(work.message, "internal_error", f"{type(error).__name__}: {error}")
+                continue
+            if record is not None:
+                records.append(record)
+        self._awaiting.append(_Pending(work.message.token, records, self._last_seq))
+
+    # --- applying parts (live and on journal replay) -------------------------------------
+
+    def _apply(self, part: Part, message: Message | None) -> dict[str, Any] | None:
+        """Apply one part; returns its journal record if it changed state."""
+        if isinstance(part, ErrorPart):
+            self._error(message, part.reason, part.detail)
+            return None
+        if isinstance(part, ReadingPart):
+            return self._apply_readings(part, message)
+        if isinstance(part, InputPart):
+            for name in self.table.deliver_input(part.topic, part.time, part.value):
+                self._dirty.add(name)
+            self.counters.add("inputs")
+            return {"t": "i", "topic": part.topic, "time": part.time, "value": part.value}
+        return self._apply_control(part, message)
+
+    def _apply_readings(self, part: ReadingPart, message: Message | None) -> dict[str, Any] | None:
+        if part.template not in self.routes.templates:
+            self._error(message, "unknown_topic", f"channel template {part.template!r} is gone")
+            return None
+        origin = self.table.origin.get(part.name)
+        if origin is not None and origin[0] != part.template:
+            self._error(
+                message,
+                "name_collision",
+                f"channel {part.name!r} already comes from template {origin[0]!r}; give the "
+                "templates names that cannot collide",
+            )
+            return None
+        channel = self.table.create(part.template, part.wildcards)
+        if channel is None:
+            self._error(
+                message,
+                "channel_limit",
+                f"limits.max_channels ({self.table.max_channels}) reached; {part.name!r} "
+                "not created",
+            )
+            return None
+        applied = []
+        for reading in part.readings:
+            if reading.value is None:
+                self.counters.add("skipped_no_value")
+                continue
+            if reading.time <= channel.last_time:
+                self.counters.add("skipped_not_newer")
+                self._error(
+                    message,
+                    "not_newer",
+                    f"reading at {reading.time!r} is not newer than the last one of "
+                    f"{channel.name!r} ({channel.last_time!r}); a redelivery, a duplicate or "
+                    "out of order: skipped",
+                )
+                continue
+            self._process(channel, reading)
+            applied.append([reading.time, reading.value, dict(reading.fields)])
+        if not applied:
+            return None
+        self._dirty.add(channel.name)
+        return {"t": "r", "c": part.template, "w": list(part.wildcards), "r": applied}
+
+    def _process(self, channel: Channel, reading: Reading) -> None:
+        assert reading.value is not None
+        result, events = channel.process(Sample(reading.time, reading.value, reading.fields))
+        self.counters.add("processed" if self._live else "replayed")
+        self._publish(f"{self.prefix}/{channel.name}/corrected", result.to_json())
+        if self._live:
+            for sink in self.sinks:
+                sink.corrected(channel, result)
+        self._publish_alerts(channel, events)
+
+    def _apply_control(self, part: ControlPart, message: Message | None) -> dict[str, Any] | None:
+        channel = self.table.get(part.channel)
+        if channel is None:
+            self._error(
+                message,
+                "unknown_channel",
+                f"control for {part.channel!r}, which is not a channel (yet); channels: "
+                f"{', '.join(sorted(self.table.names())) or 'none'}",
+            )
+            return None
+        events = channel.control(part.event)
+        self.counters.add("controls")
+        self._publish_alerts(channel, events)
+        self._dirty.add(channel.name)
+        event = part.event
+        return {"t": "c", "ch": channel.name, "e": [event.time, event.event, event.mode]}
+
+    def _replay_record(self, record: dict[str, Any]) -> None:
+        kind = record["t"]
+        if kind == "r":
+            readings = tuple(Reading(t, v, f) for t, v, f in record["r"])
+            template = record["c"]
+            if template not in self.routes.templates:
+                return
+            wildcards = tuple(record["w"])
+            name = _fill_name(self.routes, template, wildcards)
+            self._apply_readings(ReadingPart(template, name, wildcards, readings), None)
+        elif kind == "i":
+            self._apply(InputPart("", "", record["topic"], record["time"], record["value"]), None)
+        elif kind == "c":
+            time_, event, mode = record["e"]
+            self._apply_control(ControlPart(record["ch"], ControlEvent(time_, event, mode)), None)
+
+    # --- outputs --------------------------------------------------------------------------
+
+    def _publish(self, topic: str, payload: Any, *, retain: bool = False) -> None:
+        if not self._live:
+            return
+        data = json.dumps(payload, allow_nan=False).encode()
+        self._last_seq = self.broker.publish(topic, data, retain=retain)
+        self.counters.add("published")
+
+    def _publish_alerts(self, channel: Channel, events: Iterable[AlertEvent]) -> None:
+        for event in events:
+            body = event.to_json()
+            self._publish(f"{self.prefix}/{channel.name}/alert", body, retain=True)
+            self._publish(f"{self.prefix}/{channel.name}/alert/{event.rule}", body, retain=True)
+            self.counters.add("alerts")
+            if self._live:
+                for sink in self.sinks:
+                    sink.alert(channel, event)
+
+    def _error(self, message: Message | None, reason: str, detail: str) -> None:
+        if message is None:  # replaying the journal: the error was reported the first time
+            return
+        self.counters.add(f"errors.{reason}")
+        self.counters.add("errors")
+        self._bad_input.warning(reason, f"bad input on {message.topic}: {reason}: {detail}")
+        text = message.payload[: ERROR_PAYLOAD_CHARS * 4].decode("utf-8", "replace")
+        body = {
+            "time": message.arrival,
+            "topic": message.topic,
+            "reason": reason,
+            "detail": detail,
+            "payload": text[:ERROR_PAYLOAD_CHARS],
+        }
+        self._publish(f"{self.prefix}/error", body)
+
+    def _publish_stats(self) -> None:
+        now = time.monotonic()
+        if now - self._last_stats < STATS_EVERY_S:
+            return
+        self._last_stats = now
+        stats = {**self.counters.as_dict(), "channels": len(self.table.channels)}
+        stats["queue"] = self._queue.qsize()
+        stats["awaiting_commit"] = len(self._awaiting)
+        self._publish(f"{self.prefix}/stats", stats, retain=True)
+
+    # --- commits and snapshots ------------------------------------------------------------
+
+    def _commit(self, *, force: bool) -> None:
+        if not self._awaiting:
+            return
+        confirmed = self.broker.confirmed()
+        ready = 0
+        for pending in self._awaiting:
+            if pending.needs > confirmed:
+                break
+            ready += 1
+        if not ready:
+            return
+        waited = time.monotonic() - self._awaiting[0].since
+        if not (
+            force or ready >= self._commit_batch or waited >= COMMIT_DELAY_S or self._queue.empty()
+        ):
+            return
+        batch = [self._awaiting[i] for i in range(ready)]
+        first = self._journal_seq + 1
+        records: list[dict[str, Any]] = []
+        for pending in batch:
+            for record in pending.records:
+                records.append({"s": first + len(records), **record})
+        try:
+            for sink in self.sinks:
+                sink.commit()
+            self.store.append_journal(records)
+        except OSError as error:
+            # Disk full or failing: acknowledge nothing, so the broker keeps the messages and
+            # the full queue pushes back; retry on the next step.
+            self.counters.add("journal_errors")
+            self._backlog_log.warning(
+                "journal", f"cannot write the state journal ({error.strerror}); holding acks"
+            )
+            return
+        for _ in range(ready):
+            self._awaiting.popleft()
+        self._journal_seq += len(records)
+        self._journal_since_snapshot += len(records)
+        self.counters.add("journal_records", len(records))
+        for pending in batch:
+            if pending.token is not None:
+                self.broker.ack(pending.token)
+        self.counters.add("acked", len(batch))
+
+    def _snapshot_due(self) -> bool:
+        if self._journal_since_snapshot >= JOURNAL_SNAPSHOT_RECORDS:
+            return True
+        return bool(self._dirty) and time.monotonic() - self._last_snapshot >= self.snapshot_every
+
+    def _quiesce(self, timeout: float = QUIESCE_TIMEOUT_S) -> bool:
+        """Commit everything processed so far; False if that cannot happen now."""
+        deadline = time.monotonic() + timeout
+        while True:
+            self._commit(force=True)
+            if not self._awaiting:
+                return True
+            # A full queue may mean the network thread waits on us: never wait back.
+            if self._queue.full() or time.monotonic() > deadline:
+                self._last_snapshot = time.monotonic()  # try again one period later
+                return False
+            time.sleep(0.002)
+
+    def snapshot(self) -> None:
+        """Write every channel's state (call only when nothing awaits a commit)."""
+        for name in self._dirty:
+            channel = self.table.channels.get(name)
+            if channel is None:
+                continue
+            template, wildcards = self.table.origin[name]
+            entry = {
+                "template": template,
+                "wildcards": list(wildcards),
+                "state": channel.to_state(),
+            }
+            self._state_text[name] = json.dumps(entry)
+        meta = {
+            "journal_seq": self._journal_seq,
+            "saved_at": time.time(),
+            "latest_inputs": self.table.latest_inputs(),
+        }
+        try:
+            size = self.store.save_snapshot(self._state_text, meta)
+            self.store.reset_journal()
+        except OSError as error:
+            _log.error("cannot write the state snapshot (%s); will retry", error.strerror)
+            self._last_snapshot = time.monotonic()
+            return
+        self._dirty.clear()
+        self._journal_since_snapshot = 0
+        self._last_snapshot = time.monotonic()
+        self.counters.add("snapshots")
+        _log.debug(
+            "snapshot of %d channels, %d bytes in %.1f ms",
+            len(self._state_text),
+            size,
+            1000 * (self.store.last_snapshot_s or 0.0),
+        )
+
+    def restore(self) -> None:
+        """Load the snapshot and replay the journal after it (no outputs)."""
+        document = self.store.load_snapshot() or {}
+        self.table.load_latest_inputs(document.get("latest_inputs"))
+        restored = 0
+        for name, entry in (document.get("channels") or {}).items():
+            restored += self._restore_channel(str(name), entry)
+        after = int(document.get("journal_seq", 0))
+        self._journal_seq = after
+        replayed = 0
+        for record in self.store.read_journal(after):
+            try:
+                self._replay_record(record)
+            except (KeyError, TypeError, ValueError, InputError) as error:
+                _log.error("journal record %s cannot be applied (%s); skipped", record, error)
+            self._journal_seq = max(self._journal_seq, int(record["s"]))
+            replayed += 1
+        if document or replayed:
+            _log.info(
+                "restored %d channel(s) from the snapshot and %d journal record(s)",
+                restored,
+                replayed,
+            )
+
+    def _restore_channel(self, name: str, entry: Any) -> int:
+        try:
+            template = entry["template"]
+            wildcards = tuple(str(w) for w in entry["wildcards"])
+            config = self.routes.templates.get(template)
+            if config is None:
+                _log.warning(
+                    "channel %r in the snapshot comes from template %r, which is no longer "
+                    "configured; its state is dropped",
+                    name,
+                    template,
+                )
+                return 0
+            channel = Channel(config, name)
+            channel.load_state(entry["state"])
+        except (KeyError, TypeError, ValueError, InputError) as error:
+            _log.warning(
+                "channel %r: saved state does not fit the configured model (%s); it starts fresh",
+                name,
+                error,
+            )
+            return 0
+        self.table.adopt(channel, template, wildcards)
+        self._dirty.add(name)
+        return 1
+
+    # --- reload ---------------------------------------------------------------------------
+
+    def _apply_reload(self) -> None:
+        with self._reload_lock:
+            config, self._reload = self._reload, None
+        assert config is not None
+        routes = Routes(config)
+        table = ChannelTable(routes, int(config.limits["max_channels"]))
+        table.load_latest_inputs(self.table.latest_inputs())
+        kept = fresh = dropped = 0
+        for name, channel in self.table.channels.items():
+            template, wildcards = self.table.origin[name]
+            new_config = routes.templates.get(template)
+            if new_config is None:
+                dropped += 1
+                continue
+            replacement = Channel(new_config, name)
+            if new_config.model_key() == channel.config.model_key():
+                replacement.load_state(channel.to_state())
+                kept += 1
+            else:
+                fresh += 1
+                _log.info("channel %r: its model changed; it starts fresh", name)
+            table.adopt(replacement, template, wildcards)
+        old_topics = self._subscribed
+        self.config, self.routes, self.table = config, routes, table
+        self.prefix = config.output_prefix
+        self._state_text = {}
+        self._dirty = set(table.channels)
+        new_topics = routes.subscriptions()
+        self.broker.unsubscribe(sorted(old_topics - new_topics))
+        self.broker.subscribe(sorted(new_topics - old_topics))
+        self._subscribed = set(new_topics)
+        _log.info(
+            "config reloaded: %d channel(s) kept their state, %d start fresh, %d dropped",
+            kept,
+            fresh,
+            dropped,
+        )
+
+    # --- for tests and the status page ---------------------------------------------------
+
+    def wait_idle(self, timeout: float, condition: Callable[[], bool] | None = None) -> bool:
+        """Wait until every message received is committed and acknowledged (tests)."""
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            done = self.counters.get("acked") == self.counters.get("received")
+            if done and (condition is None or condition()):
+                return True
+            time.sleep(0.005)
+        return False
+
+
+def _fill_name(routes: Routes, template: str, wildcards: tuple[str, ...]) -> str:
+    return fill(routes.templates[template].name, wildcards)

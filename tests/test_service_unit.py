@@ -1,0 +1,466 @@
+"""The daemon's worker against a fake broker: routing, outputs, commits, restore, reload."""
+
+from __future__ import annotations
+
+import json
+import logging
+import math
+import threading
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+
+from zeroline.channel import Channel, Sample
+from zeroline.config import Config, parse_config
+from zeroline.mqtt import Message
+from zeroline.service import Service
+from zeroline.state import StateStore
+
+T0 = 1_780_000_000.0  # a fixed instant; arrival times are set to match
+
+
+def config_text(
+    state_dir: Path,
+    *,
+    basis: str = "[constant, {polynomial: {of: t, degree: 1, scale: 1d}}]",
+    extra: str = "",
+    max_channels: int = 100,
+) -> str:
+    return f"""
+state: {{dir: {state_dir}, snapshot_every: 3600s}}
+limits: {{max_channels: {max_channels}, queue: 1000}}
+channels:
+  - name: "{{1}}-gas"
+    topic: site/+/gas
+    basis: {basis}
+    inputs:
+      temp: {{topic: "site/{{1}}/temp", max_age: 1h}}
+    {extra}
+"""
+
+
+class FakeBroker:
+    """A `BrokerLink` in memory: records publishes and acks; confirms on demand."""
+
+    def __init__(self, *, auto_confirm: bool = True) -> None:
+        self.auto_confirm = auto_confirm
+        self.published: list[tuple[str, Any, bool]] = []
+        self.acked: list[int] = []
+        self.subscribed: set[str] = set()
+        self._sequence = 0
+        self._confirmed = 0
+        self._next_token = 0
+        self._lock = threading.Lock()
+        self.on_message: Any = None
+
+    def connect(self, on_message: Any, on_connect: Any) -> None:
+        self.on_message = on_message
+        on_connect()
+
+    def subscribe(self, topics: Any) -> None:
+        self.subscribed |= set(topics)
+
+    def unsubscribe(self, topics: Any) -> None:
+        self.subscribed -= set(topics)
+
+    def publish(self, topic: str, payload: bytes, *, retain: bool = False) -> int:
+        with self._lock:
+            self._sequence += 1
+            self.published.append((topic, json.loads(payload), retain))
+            if self.auto_confirm:
+                self._confirmed = self._sequence
+            return self._sequence
+
+    def confirm_all(self) -> None:
+        with self._lock:
+            self._confirmed = self._sequence
+
+    def confirmed(self) -> int:
+        with self._lock:
+            return self._confirmed
+
+    def ack(self, token: Any) -> None:
+        with self._lock:
+            self.acked.append(token)
+
+    def close(self) -> None:
+        pass
+
+    def deliver(self, topic: str, payload: bytes | str, arrival: float = T0) -> int:
+        with self._lock:
+            self._next_token += 1
+            token = self._next_token
+        data = payload.encode() if isinstance(payload, str) else payload
+        self.on_message(Message(topic, data, arrival, token))
+        return token
+
+    def on(self, suffix: str) -> list[Any]:
+        with self._lock:
+            return [body for topic, body, _ in self.published if topic.endswith(suffix)]
+
+
+def start(config: Config, broker: FakeBroker, state_dir: Path) -> Service:
+    service = Service(config, broker, StateStore(state_dir))
+    service.start()
+    return service
+
+
+def readings(n: int, seed: int = 7) -> list[tuple[float, float, float]]:
+    """(time, value, temp): a drifting signal, 5-minute spacing (invented demo data)."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for i in range(n):
+        t = T0 + 300.0 * i
+        rows.append((t, 2.0 + 1e-5 * (t - T0) + rng.normal(0, 0.1), 20.0 + i % 7))
+    return rows
+
+
+def reading_payload(t: float, v: float) -> str:
+    return json.dumps({"time": t, "value": v})
+
+
+@pytest.fixture()
+def state_dir(tmp_path: Path) -> Path:
+    return tmp_path / "state"
+
+
+class TestRoundTrip:
+    def test_corrected_equals_a_channel_fed_directly(self, state_dir: Path) -> None:
+        """Readings through the service give exactly what the Channel class gives."""
+        config = parse_config(config_text(state_dir))
+        broker = FakeBroker()
+        service = start(config, broker, state_dir)
+        rows = readings(120)
+        for t, v, _ in rows:
+            broker.deliver("site/a/gas", reading_payload(t, v))
+        assert service.wait_idle(10)
+        direct = Channel(config.channels[0], "a-gas")
+        expected = [direct.process(Sample(t, v))[0].to_json() for t, v, _ in rows]
+        got = broker.on("a-gas/corrected")
+        assert len(got) == len(rows)
+        for mine, theirs in zip(got, expected, strict=True):
+            assert mine["time"] == theirs["time"]
+            assert mine["corrected"] == pytest.approx(theirs["corrected"], abs=1e-12)
+        assert sorted(broker.acked) == list(range(1, len(rows) + 1))
+        service.stop()
+
+    def test_wildcard_makes_one_channel_per_topic(self, state_dir: Path) -> None:
+        """site/+/gas with name {1}-gas creates a-gas and b-gas on first sight."""
+        broker = FakeBroker()
+        service = start(parse_config(config_text(state_dir)), broker, state_dir)
+        broker.deliver("site/a/gas", reading_payload(T0, 1.0))
+        broker.deliver("site/b/gas", reading_payload(T0, 2.0))
+        assert service.wait_idle(5)
+        assert sorted(service.table.channels) == ["a-gas", "b-gas"]
+        assert broker.on("b-gas/corrected")[0]["raw"] == 2.0
+        service.stop()
+
+
+class TestDelivery:
+    def test_ack_waits_for_confirmed_outputs_and_the_journal(self, state_dir: Path) -> None:
+        """No acknowledgement before the broker confirmed the outputs; then journal, then ack."""
+        broker = FakeBroker(auto_confirm=False)
+        service = start(parse_config(config_text(state_dir)), broker, state_dir)
+        broker.deliver("site/a/gas", reading_payload(T0, 1.0))
+        assert service.wait_idle(0.5) is False  # the commit waits for the confirmation
+        assert broker.acked == []
+        assert (state_dir / "journal.jsonl").read_text() == ""
+        broker.confirm_all()
+        assert service.wait_idle(5)
+        assert broker.acked == [1]
+        record = json.loads((state_dir / "journal.jsonl").read_text())
+        assert record["t"] == "r" and record["r"][0][:2] == [T0, 1.0]
+        service.stop()
+
+    def test_duplicate_and_out_of_order_are_skipped_and_reported(self, state_dir: Path) -> None:
+        """A reading not newer than the last one is not applied, counted and reported."""
+        broker = FakeBroker()
+        service = start(parse_config(config_text(state_dir)), broker, state_dir)
+        for t in (T0, T0 + 60, T0 + 60, T0 + 30, T0 + 120):
+            broker.deliver("site/a/gas", reading_payload(t, 1.0))
+        assert service.wait_idle(5)
+        assert [c["time"] for c in broker.on("a-gas/corrected")] == [T0, T0 + 60, T0 + 120]
+        errors = broker.on("zeroline/error")
+        assert [e["reason"] for e in errors] == ["not_newer", "not_newer"]
+        assert service.counters.get("skipped_not_newer") == 2
+        assert len(broker.acked) == 5  # skipped messages are acknowledged too
+        service.stop()
+
+    def test_bad_payload_goes_to_the_error_topic_truncated(self, state_dir: Path) -> None:
+        """Malformed JSON: error with topic, reason, detail and the first 200 characters."""
+        broker = FakeBroker()
+        service = start(parse_config(config_text(state_dir)), broker, state_dir)
+        broker.deliver("site/a/gas", "{" + "x" * 500)
+        broker.deliver("site/a/gas", reading_payload(T0, 1.0))
+        assert service.wait_idle(5)
+        [error] = broker.on("zeroline/error")
+        assert error["topic"] == "site/a/gas" and error["reason"] == "malformed_json"
+        assert error["payload"] == ("{" + "x" * 500)[:200]
+        assert error["detail"]
+        assert service.counters.get("errors.malformed_json") == 1
+        assert len(broker.on("a-gas/corrected")) == 1
+        service.stop()
+
+    def test_channel_limit_refuses_new_channels_with_a_log_line(
+        self, state_dir: Path, caplog: pytest.LogCaptureFixture
+    ) -> None:
+        """Beyond limits.max_channels, readings of new channels are refused and counted."""
+        broker = FakeBroker()
+        service = start(parse_config(config_text(state_dir, max_channels=2)), broker, state_dir)
+        with caplog.at_level(logging.WARNING):
+            for site in "abcd":
+                broker.deliver(f"site/{site}/gas", reading_payload(T0, 1.0))
+            assert service.wait_idle(5)
+        assert sorted(service.table.channels) == ["a-gas", "b-gas"]
+        assert service.counters.get("errors.channel_limit") == 2
+        assert sum("channel limit reached" in r.getMessage() for r in caplog.records) == 1
+        service.stop()
+
+    def test_input_before_its_channel_is_applied_at_creation(self, state_dir: Path) -> None:
+        """A temperature that arrives before the channel exists is used by its first reading."""
+        basis = "[constant, {polynomial: {of: temp, degree: 1, center: 20}}]"
+        broker = FakeBroker()
+        service = start(parse_config(config_text(state_dir, basis=basis)), broker, state_dir)
+        broker.deliver("site/a/temp", json.dumps({"time": T0 - 10, "value": 25.0}))
+        broker.deliver("site/a/gas", reading_payload(T0, 1.0))
+        assert service.wait_idle(5)
+        [corrected] = broker.on("a-gas/corrected")
+        assert corrected["quality"] != "input_stale"
+        assert corrected["corrected"] is not None
+        service.stop()
+
+    def test_control_event_and_unknown_channel(self, state_dir: Path) -> None:
+        """A control message reaches its channel; one for an unknown channel is an error."""
+        broker = FakeBroker()
+        service = start(parse_config(config_text(state_dir)), broker, state_dir)
+        broker.deliver("site/a/gas", reading_payload(T0, 1.0))
+        broker.deliver("zeroline/a-gas/control", '{"event": "recalibrated"}')
+        broker.deliver("zeroline/zz/control", '{"event": "recalibrated"}')
+        broker.deliver("zeroline/a-gas/control", '{"event": "exploded"}')
+        assert service.wait_idle(5)
+        assert service.counters.get("controls") == 1
+        reasons = [e["reason"] for e in broker.on("zeroline/error")]
+        assert reasons == ["unknown_channel", "bad_control"]
+        service.stop()
+
+
+class TestState:
+    def feed(self, broker: FakeBroker, rows: list[tuple[float, float, float]]) -> None:
+        for t, v, _ in rows:
+            broker.deliver("site/a/gas", reading_payload(t, v))
+
+    def test_restart_after_stop_restores_from_the_snapshot(self, state_dir: Path) -> None:
+        """stop() snapshots; a new service continues exactly where the old one stopped."""
+        config = parse_config(config_text(state_dir))
+        rows = readings(80)
+        broker = FakeBroker()
+        first = start(config, broker, state_dir)
+        self.feed(broker, rows[:40])
+        assert first.wait_idle(5)
+        first.stop()
+        assert (state_dir / "snapshot.json").exists()
+        broker2 = FakeBroker()
+        second = start(config, broker2, state_dir)
+        self.feed(broker2, rows[40:])
+        assert second.wait_idle(5)
+        direct = Channel(config.channels[0], "a-gas")
+        for t, v, _ in rows:
+            direct.process(Sample(t, v))
+        got = second.table.channels["a-gas"].estimator.coefficients
+        np.testing.assert_allclose(got, direct.estimator.coefficients, rtol=0, atol=1e-12)
+        second.stop()
+
+    def test_crash_restores_from_snapshot_plus_journal(self, state_dir: Path) -> None:
+        """Without a clean stop the journal carries what came after the last snapshot."""
+        config = parse_config(config_text(state_dir))
+        rows = readings(60)
+        broker = FakeBroker()
+        first = start(config, broker, state_dir)
+        self.feed(broker, rows[:20])
+        assert first.wait_idle(5)
+        first._quiesce()
+        first.snapshot()
+        self.feed(broker, rows[20:45])
+        assert first.wait_idle(5)
+        # "crash": abandon the first service without stop(); its files stay as they are
+        second = start(config, FakeBroker(), state_dir)
+        assert second.table.channels["a-gas"].last_time == rows[44][0]
+        direct = Channel(config.channels[0], "a-gas")
+        for t, v, _ in rows[:45]:
+            direct.process(Sample(t, v))
+        got = second.table.channels["a-gas"].estimator.coefficients
+        np.testing.assert_allclose(got, direct.estimator.coefficients, rtol=0, atol=1e-12)
+        first._stop.set()
+        second.stop()
+
+    def test_changed_model_starts_fresh_after_restart(
+        self, state_dir: Path, caplog: pytest.LogCaptureFixture
+    ) -> None:
+        """A snapshot for another basis is not forced onto the new model: fresh, logged."""
+        broker = FakeBroker()
+        first = start(parse_config(config_text(state_dir)), broker, state_dir)
+        self.feed(broker, readings(10))
+        assert first.wait_idle(5)
+        first.stop()
+        with caplog.at_level(logging.WARNING):
+            second = start(
+                parse_config(config_text(state_dir, basis="[constant]")), FakeBroker(), state_dir
+            )
+        assert "a-gas" not in second.table.channels
+        assert any("starts fresh" in r.getMessage() for r in caplog.records)
+        second.stop()
+
+
+class TestReload:
+    def test_reload_keeps_unchanged_models_and_resets_changed_ones(self, state_dir: Path) -> None:
+        """SIGHUP semantics: same model_key keeps its state, a changed one starts over."""
+        text = (
+            config_text(state_dir)
+            + """
+  - name: "{1}-ph"
+    topic: site/+/ph
+    basis: [constant]
+"""
+        )
+        broker = FakeBroker()
+        service = start(parse_config(text), broker, state_dir)
+        broker.deliver("site/a/gas", reading_payload(T0, 1.0))
+        broker.deliver("site/a/ph", reading_payload(T0, 7.0))
+        assert service.wait_idle(5)
+        changed = text.replace(
+            "basis: [constant]\n",
+            "basis: [constant, {polynomial: {of: t, degree: 1, scale: 1d}}]\n",
+        )
+        service.request_reload(parse_config(changed))
+        assert service.wait_idle(5, lambda: service._reload is None)
+        assert service.table.channels["a-gas"].last_time == T0  # kept
+        assert service.table.channels["a-ph"].last_time == -math.inf  # fresh
+        service.stop()
+
+
+class TestOutputs:
+    def test_alerts_are_retained_on_the_channel_and_per_rule_topics(self, state_dir: Path) -> None:
+        """A drift beyond the limit: the event on <ch>/alert and <ch>/alert/drift_limit,
+        both retained, in the alert contract's shape."""
+        extra = "alerts: {drift_limit: 0.5, dwell: 0s}\n    learn: {min_samples: 4}"
+        broker = FakeBroker()
+        service = start(parse_config(config_text(state_dir, extra=extra)), broker, state_dir)
+        for i in range(60):
+            broker.deliver("site/a/gas", reading_payload(T0 + 3600.0 * i, 0.05 * i))
+        assert service.wait_idle(10)
+        retained = {topic: body for topic, body, retain in broker.published if retain}
+        event = retained["zeroline/a-gas/alert/drift_limit"]
+        assert event["state"] == "raised" and event["rule"] == "drift_limit"
+        assert set(event) == {
+            "time",
+            "channel",
+            "rule",
+            "state",
+            "value",
+            "limit",
+            "severity",
+            "message",
+        }
+        assert "zeroline/a-gas/alert" in retained
+        assert not any(retain for topic, _, retain in broker.published if "corrected" in topic)
+        service.stop()
+
+    def test_stats_are_published_retained(self, state_dir: Path) -> None:
+        """<prefix>/stats carries the counters (retained) for operators and tests."""
+        broker = FakeBroker()
+        service = start(parse_config(config_text(state_dir)), broker, state_dir)
+        broker.deliver("site/a/gas", "nonsense")
+        assert service.wait_idle(5)
+        assert service.wait_idle(3, lambda: bool(broker.on("zeroline/stats")))
+        stats = broker.on("zeroline/stats")[-1]
+        assert stats["errors.malformed_json"] == 1
+        service.stop()
+
+
+class TestLogs:
+    def test_json_lines_and_rate_limited_repeats(self) -> None:
+        """JSON format: one object a line; a repeated cause is logged once per interval."""
+        import io
+
+        from zeroline.logs import RateLimitedLogger, setup_logging
+
+        stream = io.StringIO()
+        root = logging.getLogger()
+        saved, level = list(root.handlers), root.level
+        setup_logging("json", "info", stream)
+        try:
+            limiter = RateLimitedLogger(logging.getLogger("zeroline.test"), interval_s=60)
+            for _ in range(5):
+                limiter.warning("bad", "bad input on x")
+        finally:
+            root.handlers[:] = saved
+            root.setLevel(level)
+        lines = stream.getvalue().splitlines()
+        assert len(lines) == 1
+        entry = json.loads(lines[0])
+        assert entry["level"] == "warning" and entry["message"] == "bad input on x"
+        assert entry["time"].endswith("Z")
+
+
+class TestSinks:
+    def test_sink_gets_every_reading_and_commits_before_the_ack(self, state_dir: Path) -> None:
+        """An OutputSink sees each corrected reading; its commit() precedes the broker ack."""
+        broker = FakeBroker()
+        order: list[str] = []
+
+        class Sink:
+            def __init__(self) -> None:
+                self.times: list[float] = []
+
+            def corrected(self, channel: Any, result: Any) -> None:
+                self.times.append(result.time)
+
+            def alert(self, channel: Any, event: Any) -> None:
+                pass
+
+            def commit(self) -> None:
+                order.append(f"commit after {len(broker.acked)} acks")
+
+            def close(self) -> None:
+                order.append("close")
+
+        sink = Sink()
+        service = Service(
+            parse_config(config_text(state_dir)), broker, StateStore(state_dir), sinks=[sink]
+        )
+        service.start()
+        broker.deliver("site/a/gas", reading_payload(T0, 1.0))
+        assert service.wait_idle(5)
+        assert sink.times == [T0]
+        assert order[0] == "commit after 0 acks" and broker.acked == [1]
+        service.stop()
+        assert order[-1] == "close"
+
+
+class TestDiskTrouble:
+    def test_journal_failure_holds_the_acks_and_retries(
+        self, state_dir: Path, monkeypatch: pytest.MonkeyPatch
+    ) -> None:
+        """A failing journal write acknowledges nothing; once it works, everything is acked."""
+        broker = FakeBroker()
+        service = start(parse_config(config_text(state_dir)), broker, state_dir)
+        real = service.store.append_journal
+        failures = {"left": 3}
+
+        def flaky(records: list[dict[str, Any]]) -> None:
+            if failures["left"]:
+                failures["left"] -= 1
+                raise OSError(28, "No space left on device")
+            real(records)
+
+        monkeypatch.setattr(service.store, "append_journal", flaky)
+        broker.deliver("site/a/gas", reading_payload(T0, 1.0))
+        broker.deliver("site/a/gas", reading_payload(T0 + 60, 1.1))
+        assert service.wait_idle(5)
+        assert service.counters.get("journal_errors") == 3
+        assert sorted(broker.acked) == [1, 2]
+        lines = (state_dir / "journal.jsonl").read_text().splitlines()
+        assert [json.loads(line)["s"] for line in lines] == [1, 2]
+        service.stop()
