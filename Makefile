@@ -1,17 +1,20 @@
-# Two entry points for users (see README): `make example` and `make test`.
+# Two entry points for users (see README): `make demo` and `make test`.
 # Both bootstrap .venv from nothing but python3.
 PYTHON ?= python3
 VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: example test lint bench clean
+.PHONY: demo example test lint bench clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/pip install --quiet --upgrade pip
 	$(BIN)/pip install --quiet -e '.[test,plot,demo]'
 	touch $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/zeroline demo --duration 60
 
 example: $(STAMP)
 	$(BIN)/zeroline fit config/examples/pressure_log.csv --y value --basis config/examples/pressure_basis.yaml

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import contextlib
 import json
+import logging
 import math
 import os
 import signal
@@ -52,12 +53,12 @@ class Stream:
     is_check: Array | None = None  # rows that are check samples (left out of the summary)
 
 
-def site_streams(days: float = SIM_DAYS) -> list[Stream]:
-    """The demo station's four sensors."""
-    ph = simulate.ph_river(days=days)
-    conductivity = simulate.conductivity_fouling(days=days, cleaned_at=days * 0.57)
-    oxygen = simulate.dissolved_oxygen(days=days)
-    no2 = simulate.no2_station(days=days, step=900)
+def site_streams(days: float = SIM_DAYS, step: float = 1800.0) -> list[Stream]:
+    """The demo station's four sensors, one reading each per `step` simulated seconds."""
+    ph = simulate.ph_river(days=days, step=step)
+    conductivity = simulate.conductivity_fouling(days=days, step=step, cleaned_at=days * 0.57)
+    oxygen = simulate.dissolved_oxygen(days=days, step=step)
+    no2 = simulate.no2_station(days=days, step=step)
     return [
         Stream(
             "river-ph",
@@ -178,6 +179,8 @@ class EmbeddedBroker:
                 f"no MQTT broker answers at {host}:{port}; start one (e.g. mosquitto) or "
                 "install the embedded one: pip install 'zeroline[demo]'"
             ) from None
+        logging.getLogger("amqtt").setLevel(logging.CRITICAL)  # it logs every retry
+        logging.getLogger("transitions").setLevel(logging.CRITICAL)
         self._asyncio = asyncio
         self._loop = asyncio.new_event_loop()
         config = {
@@ -295,6 +298,7 @@ def run_demo(
     config_path = workdir / "zeroline-demo.yaml"
     config_path.write_text(demo_config(host, port, protocol, workdir / "state"))
     streams = site_streams()
+    offset = _time_offset(streams)
     pace = duration if duration is not None else DEFAULT_PACE
     board = Board()
     daemon = _start_daemon(config_path, workdir)
@@ -306,7 +310,8 @@ def run_demo(
             f"config: {config_path}\nwatch the topics with:\n  mosquitto_sub -h {host} -p "
             f"{port} -V {'mqttv311' if protocol == '3.1.1' else 'mqttv5'} -t '{PREFIX}/#' -v"
         )
-        _play(streams, pace, host, port, protocol, board, out, until_interrupt=duration is None)
+        _play(streams, offset, pace, host, port, protocol, board, out,
+              until_interrupt=duration is None)
         time.sleep(2.0)  # let the daemon finish the last readings
     finally:
         _stop_daemon(daemon)
@@ -315,7 +320,7 @@ def run_demo(
             watcher.disconnect()
         if embedded is not None:
             embedded.stop()
-    summary = summarise(board, streams)
+    summary = summarise(board, streams, offset)
     for name, numbers in summary["channels"].items():
         out(
             f"{name:<20} raw RMS error {numbers['raw_rms']:.4g}   corrected RMS error "
@@ -326,11 +331,11 @@ def run_demo(
     return summary
 
 
-def summarise(board: Board, streams: list[Stream]) -> dict[str, Any]:
+def summarise(board: Board, streams: list[Stream], offset: float) -> dict[str, Any]:
     """Raw vs corrected against the simulated truth, over the second half of each stream
-    (the first half is learning), check samples left out."""
+    (the first half is learning), check samples left out; `offset` is what was added to the
+    simulated times when they were published."""
     channels: dict[str, Any] = {}
-    offset = _time_offset(streams)
     with board.lock:
         for stream in streams:
             corrected = board.corrected.get(stream.channel, {})
@@ -378,6 +383,7 @@ def _time_offset(streams: list[Stream]) -> float:
 
 def _play(
     streams: list[Stream],
+    offset: float,
     pace: float,
     host: str,
     port: int,
@@ -389,7 +395,6 @@ def _play(
 ) -> None:
     """Publish every stream's rows in time order, spread over `pace` wall seconds."""
     client = _client(host, port, protocol, "zeroline-demo-site")
-    offset = _time_offset(streams)
     events = _events(streams)
     start_sim = min(e[0] for e in events)
     span = max(e[0] for e in events) - start_sim

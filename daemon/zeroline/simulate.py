@@ -140,7 +140,8 @@ def conductivity_fouling(
     """A conductivity cell (µS/cm) in the same river kiosk: biofilm fouling lowers its
     reading by a growing amount until a technician cleans it on day `cleaned_at`.
 
-    Weekly, a calibration standard of 1413 µS/cm is measured (`standard`, a payload field);
+    Every two days a calibration standard of 1413 µS/cm is measured (`standard`, a payload
+    field);
     the channel learns the fouling offset from those checks and from nothing else.
     """
     rng = np.random.default_rng(seed)
@@ -150,7 +151,7 @@ def conductivity_fouling(
     truth = 480 + 60 * np.sin(2 * math.pi * age / 9.0) + rng.normal(0, 3, time.size)
     drift = -1.5 * since_clean - 0.04 * since_clean**2
     standard = np.full(time.size, np.nan)
-    checks = np.nonzero(np.diff(np.floor(age / 3.5), prepend=-1) > 0)[0]
+    checks = np.nonzero(np.diff(np.floor(age / 2.0), prepend=-1) > 0)[0]
     standard[checks] = 1413.0
     truth[checks] = 1413.0
     value = truth + drift + rng.normal(0, 2.0, time.size)
