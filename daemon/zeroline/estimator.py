@@ -99,6 +99,7 @@ _BLOCK = 64  # window: rows per checkpoint of the front stack
 _CHUNK_ROWS = 8192  # replay: most rows in one vectorised chunk
 _CHUNK_MIN = 16  # replay: below this a chunk is not worth it; use the per-sample path
 _CHUNK_TRACE = 16.0  # replay: most information a chunk may add, relative to its start
+_G_FLOOR = 2.0**-64  # the forgetting g in F = g·G is multiplied into G below this
 
 
 class Innovation(NamedTuple):
@@ -133,10 +134,18 @@ class ReplayResult:
     residual: FloatArray
 
 
+# LAPACK handles fetched once; positional arguments, because f2py parses keywords slower.
+_dtpqrt = lapack.dtpqrt
+_dtrtrs = lapack.dtrtrs
+
+
 def _absorb(factor: FloatArray, rows: FloatArray) -> FloatArray:
-    """Return R of QR([factor; rows]) for upper-triangular `factor`; `rows` is destroyed."""
+    """Return R of QR([factor; rows]) for upper-triangular `factor`; `rows` is destroyed.
+
+    A Fortran-ordered `factor` is overwritten in place and returned (f2py's overwrite_a).
+    """
     n = factor.shape[0]
-    result, _, _, info = lapack.dtpqrt(0, n, factor, rows, overwrite_a=1, overwrite_b=1)
+    result, _, _, info = _dtpqrt(0, n, factor, rows, 1, 1)
     if info != 0:  # only for malformed arguments, which would be a bug here
         raise RuntimeError(f"dtpqrt failed with info={info}")
     return np.asarray(result)
@@ -225,6 +234,9 @@ class RecursiveEstimator:
         self._prior_center = self.prior_mean * self._scale  # prior mean, internal units
         self._prior_root = 1.0 / (self.prior_sd * self._scale)  # Λ, internal units
         self._row = np.zeros((1, p + 1), order="F")  # scratch for one absorbed row
+        self._row_x = self._row[0, :p]  # its φ part, a contiguous view
+        self._shape = (p,)
+        self._scale_outer = np.outer(self._scale, self._scale)
         self._time: float | None = None
         self._top_up_after = (
             math.inf if self.half_life is None else self.half_life * math.log2(1.0 + PRIOR_TOP_UP)
@@ -250,6 +262,43 @@ class RecursiveEstimator:
             self._checkpoints: list[FloatArray] = []
             self._inner: list[FloatArray] = []
             self._inner_block = -1
+
+    @property
+    def _factor(self) -> FloatArray:
+        """F = [[R, z], [0, ρ]] at the current time, Fortran order; LAPACK works on it in place.
+
+        Stored as F = g·G: forgetting only lowers the number g, and the hot path absorbs
+        each row divided by g into G, which saves a pass over F per sample (a uniform
+        scaling leaves every rotation and solve as it was). Reading `_factor` multiplies g
+        into G, so in-place changes to the returned array are changes of the state.
+        """
+        self._settle()
+        return self._f
+
+    @_factor.setter
+    def _factor(self, value: FloatArray) -> None:
+        """Set F as the factor at the current `_time` (set the time first)."""
+        p = self.n_terms
+        self._f = np.asfortranarray(value)
+        self._r = self._f[:, :p]  # R with its leading dimension p + 1, as dtrtrs takes it
+        self._z = self._f[:p, p]
+        self._g, self._g_time = 1.0, self._time
+        self._changed()
+
+    def _settle(self) -> None:
+        """Multiply the pending forgetting g into G, so that G = F."""
+        if self._g != 1.0:
+            self._f *= self._g
+            self._g, self._g_time = 1.0, self._time
+
+    def _changed(self) -> None:
+        """The factor changed other than by a uniform scaling: θ must be solved again.
+
+        Forgetting scales F uniformly, which leaves θ = R⁻¹z and the prior's penalty as they
+        are, so the cache survives it; every absorption, merge or shift clears it.
+        """
+        self._theta: FloatArray | None = None
+        self._penalty = math.nan
 
     def _prior_factor(self) -> FloatArray:
         p = self.n_terms
@@ -288,21 +337,37 @@ class RecursiveEstimator:
 
         Returns the innovation (before learning). A weight of 0 advances the clock only.
         """
-        x = self._internal(phi)
+        # The hot path: every check comes before any state changes, and the finiteness of φ
+        # is read off φᵀPφ, which the innovation needs anyway (R is finite and non-singular,
+        # so a NaN or infinity in φ always shows there).
+        x = np.asarray(phi, dtype=float)
+        if x.shape != self._shape:
+            raise InputError(f"phi must hold {self.n_terms} numbers, got shape {x.shape}")
+        if self.column_scale is not None:
+            x = x / self._scale
         y, weight = float(y), float(weight)
         if not math.isfinite(y):
             raise InputError(f"y must be a finite number, got {y!r}")
         if not math.isfinite(weight) or weight < 0:
             raise InputError(f"weight must be a finite number >= 0, got {weight!r}")
-        self._advance(self._checked_time(time))
-        innovation = self._innovation(x, y)
+        moment = self._checked_time(time)
+        a = _dtrtrs(self._r, x, 0, 1)[0]  # a = G⁻ᵀφ (R = g·G), before forgetting
+        quadratic = float(a.dot(a))  # φᵀPφ = ‖R⁻ᵀφ‖² = ‖G⁻ᵀφ‖² / g²
+        if not math.isfinite(quadratic):
+            raise InputError("phi must be finite numbers (no NaN, no infinity, not above 1e150)")
+        if self._advance(moment):  # the prior was topped up or rows left the window
+            a = _dtrtrs(self._r, x, 0, 1)[0]
+            quadratic = float(a.dot(a))
+        innovation = self._innovation(x, y, quadratic / (self._g * self._g))
         if weight > 0:
             self._learn(x, y, weight)
         return innovation
 
     def innovation(self, phi: ArrayLike, y: float) -> Innovation:
         """The innovation of φ, y against the current estimate, without learning anything."""
-        return self._innovation(self._internal(phi), float(y))
+        x = self._internal(phi)
+        a = _dtrtrs(self._r, x, 0, 1)[0]
+        return self._innovation(x, float(y), float(a.dot(a)) / (self._g * self._g))
 
     def _internal(self, phi: ArrayLike) -> FloatArray:
         x = np.asarray(phi, dtype=float)
@@ -324,23 +389,35 @@ class RecursiveEstimator:
             )
         return time
 
-    def _advance(self, time: float) -> None:
-        """Bring the state to `time`: forgetting and prior top-up, or window expiry."""
+    def _advance(self, time: float) -> bool:
+        """Bring the state to `time`: forgetting and prior top-up, or window expiry.
+
+        Returns True if G changed (forgetting only changes g, which leaves θ as it is).
+        """
         if self._time is None:
-            self._time = time
+            self._time = self._g_time = time
             self._prior_ref_time = time
-            return
+            return False
+        changed = False
         if self.window is not None:
-            self._expire(time - self.window)
+            changed = self._expire(time - self.window)
         elif self.half_life is not None and time > self._time:
             decay = 2.0 ** (-(time - self._time) / self.half_life)
-            self._factor *= math.sqrt(decay)  # F ← √λ·F: every row's weight times λ
             self._count *= decay
             self._information *= decay
+            assert self._g_time is not None
+            # F ← √λ·F as g = 2^(−(t − t_g)/2h): computed, not multiplied up, so it has
+            # no rounding drift; multiplied into G long before 1/g could overflow.
+            self._g = 2.0 ** (-(time - self._g_time) / (2.0 * self.half_life))
+            if self._g < _G_FLOOR:
+                self._time = time
+                self._settle()
         self._time = time
         assert self._prior_ref_time is not None
         if time - self._prior_ref_time > self._top_up_threshold(self._prior_ref_weight):
             self._top_up_prior()
+            changed = True
+        return changed
 
     def _top_up_threshold(self, ref_weight: float) -> float:
         """Top up when the time since the reference exceeds this (replay makes the same test)."""
@@ -355,12 +432,13 @@ class RecursiveEstimator:
         self._prior_ref_weight = 1.0 + PRIOR_TOP_UP
         self._prior_ref_time = self._time
 
-    def _innovation(self, x: FloatArray, y: float) -> Innovation:
-        p = self.n_terms
-        a = lapack.dtrtrs(self._factor[:, :p], x, trans=1)[0]  # a = R⁻ᵀφ
-        prediction = float(a @ self._factor[:p, p])  # φᵀθ = (R⁻ᵀφ)ᵀ z
-        baseline_variance = float(a @ a)  # φᵀPφ = ‖R⁻ᵀφ‖²
-        sd = self.residual_sd
+    def _innovation(self, x: FloatArray, y: float, baseline_variance: float) -> Innovation:
+        """The innovation of internal-unit x, y given φᵀPφ (`baseline_variance`)."""
+        theta = self._theta
+        if theta is None:
+            theta = self._solve()
+        prediction = float(x.dot(theta))  # φᵀθ
+        sd = self._residual_sd(self._penalty)
         variance = sd * sd * (1.0 + baseline_variance)
         residual = y - prediction
         standardised = residual / math.sqrt(variance) if variance > 0 else math.nan
@@ -368,21 +446,25 @@ class RecursiveEstimator:
 
     def _learn(self, x: FloatArray, y: float, weight: float) -> None:
         p = self.n_terms
-        root = math.sqrt(weight)
+        root = math.sqrt(weight) / self._g  # G absorbs the row divided by g
         row = self._row
-        np.multiply(x, root, out=row[0, :p])
+        np.multiply(x, root, out=self._row_x)
         row[0, p] = y * root
         if self.window is not None:
             assert self._time is not None
             self._back_rows.append((self._time, weight, row[0].copy()))
             self._back = _absorb(self._back, row.copy(order="F"))
-        self._factor = _absorb(self._factor, row)
+        # In place (G is Fortran-ordered float64), so the views of R and z stay valid.
+        info = _dtpqrt(0, p + 1, self._f, row, 1, 1)[3]
+        if info != 0:  # only for malformed arguments, which would be a bug here
+            raise RuntimeError(f"dtpqrt failed with info={info}")
+        self._theta = None
         self._count += 1.0
         self._information += weight
 
     # ------------------------------------------------------ exact window
-    def _expire(self, cutoff: float) -> None:
-        """Drop every row with time ≤ cutoff; the window is (t − window, t]."""
+    def _expire(self, cutoff: float) -> bool:
+        """Drop every row with time ≤ cutoff; the window is (t − window, t]. True if any."""
         expired = False
         while True:
             if self._head == len(self._front_times):
@@ -399,6 +481,7 @@ class RecursiveEstimator:
             self._factor = self._merged()
             if self._head == len(self._front_times) and not self._back_rows:
                 self._count, self._information = 0.0, 0.0  # no drift from repeated subtraction
+        return expired
 
     def _flip(self) -> None:
         """Move the back's rows to the front and checkpoint their suffix factors."""
@@ -444,13 +527,31 @@ class RecursiveEstimator:
         return merged if suffix is None else _absorb(merged, suffix.copy(order="F"))
 
     # ------------------------------------------------------------ results
+    def _solved(self) -> tuple[FloatArray, float]:
+        """θ = R⁻¹z (internal units; do not modify) and the prior's penalty ‖Λ(θ − μ)‖².
+
+        Solved once per change of the factor: the channel asks for the coefficients, the
+        prediction and σ̂ after every update, and the next innovation needs them again.
+        """
+        theta = self._theta
+        if theta is None:
+            theta = self._solve()
+        return theta, self._penalty
+
+    def _solve(self) -> FloatArray:
+        """Solve θ = R⁻¹z = G⁻¹z_G and the penalty into the cache; return θ."""
+        theta: FloatArray = _dtrtrs(self._r, self._z)[0]
+        offset = theta - self._prior_center
+        offset *= self._prior_root
+        self._theta, self._penalty = theta, float(offset.dot(offset))
+        return theta
+
     def _solution(self) -> FloatArray:
-        p = self.n_terms
-        return np.asarray(lapack.dtrtrs(self._factor[:, :p], self._factor[:p, p])[0])
+        return self._solved()[0]
 
     @property
     def coefficients(self) -> FloatArray:
-        """θ in the user's units (internal column scaling undone)."""
+        """θ in the user's units (internal column scaling undone); a new array each call."""
         return self._solution() / self._scale
 
     @property
@@ -459,7 +560,7 @@ class RecursiveEstimator:
         p = self.n_terms
         inverse = lapack.dtrtri(self._factor[:p, :p])[0]  # R⁻¹; P = R⁻¹R⁻ᵀ
         covariance = inverse @ inverse.T
-        return np.asarray(covariance / np.outer(self._scale, self._scale))
+        return np.asarray(covariance / self._scale_outer)
 
     def predict(self, phi: ArrayLike) -> float:
         """Baseline φᵀθ."""
@@ -470,9 +571,8 @@ class RecursiveEstimator:
 
         The published uncertainty of the baseline is √variance(φ)·residual_sd.
         """
-        p = self.n_terms
-        a = lapack.dtrtrs(self._factor[:, :p], self._internal(phi), trans=1)[0]
-        return float(a @ a)
+        a = _dtrtrs(self._r, self._internal(phi), 0, 1)[0]
+        return float(a.dot(a)) / (self._g * self._g)
 
     def information_matrix(self) -> FloatArray:
         """info = RᵀR = Σ w·2^(−age/h)·φφᵀ + prior, in the user's units.
@@ -487,11 +587,17 @@ class RecursiveEstimator:
     @property
     def residual_sd(self) -> float:
         """σ̂ = √(Σ w·2^(−age/h)·r² / (effective_n − p)) at the current θ; NaN until n > p."""
+        if self._count <= self.n_terms:
+            return math.nan
+        return self._residual_sd(self._solved()[1])
+
+    def _residual_sd(self, penalty: float) -> float:
+        """σ̂ given the prior's penalty at θ: the data's part of ρ² = min objective."""
         p = self.n_terms
         if self._count <= p:
             return math.nan
-        penalty = (self._solution() - self._prior_center) * self._prior_root
-        rss = self._factor[p, p] ** 2 - self.prior_weight * float(penalty @ penalty)
+        rho = self._g * self._f[p, p]
+        rss = rho * rho - self.prior_weight * penalty
         return math.sqrt(max(rss, 0.0) / (self._count - p))
 
     def condition_number(self) -> float:
@@ -521,6 +627,7 @@ class RecursiveEstimator:
         self._prior_center[term] += moved
         if self.window is None:
             self._factor[:p, p] += moved * self._factor[:p, term]  # z ← z + R·Δx
+            self._changed()
             return
         rows = self._window_rows()
         rows[:, 2 + p] += moved * rows[:, 2 + term]
@@ -850,8 +957,8 @@ def _replay_chunk(
     if any_top_up:
         parts.append(math.sqrt(alpha[-1] * topped[-1]) * est._prior_rows)
     parts.append(np.column_stack([rows, target]) * np.sqrt(alpha[-1] * d)[:, None])
+    est._time = float(t[-1])  # first: the factor is set as the one at the current time
     est._factor = _triangle(np.vstack(parts))
-    est._time = float(t[-1])
     est._prior_ref_weight, est._prior_ref_time = ref_weight, ref_time
     est._count, est._information = float(count[-1]), float(information[-1])
 
