@@ -912,14 +912,14 @@ def _prior_schedule(
     return weight, tops, amounts, ref_weight, ref_time
 
 
-def _packed(p: int, row: int, column: int) -> int:
-    """Position of the lower-triangle entry (row ≥ column) in column-major packed order."""
-    return column * p - column * (column - 1) // 2 + row - column
+def _packed(row: int, column: int) -> int:
+    """Position of the lower-triangle entry (row ≥ column) in row-major packed order."""
+    return row * (row + 1) // 2 + column
 
 
 def _packed_indices(p: int) -> tuple[FloatArray, FloatArray]:
-    """Row and column of each lower-triangle entry, in column-major packed order."""
-    pairs = [(row, column) for column in range(p) for row in range(column, p)]
+    """Row and column of each lower-triangle entry, in row-major packed order."""
+    pairs = [(row, column) for row in range(p) for column in range(row + 1)]
     return np.array([r for r, _ in pairs]), np.array([c for _, c in pairs])
 
 
@@ -965,8 +965,8 @@ def _replay_chunk(
     weighted = psi * d
     for k in range(p):
         for i in range(k, p):
-            np.multiply(weighted[i], psi[k], out=sums[_packed(p, i, k)])
-        sums[_packed(p, k, k), 0] += 1.0  # the start state's I
+            np.multiply(weighted[i], psi[k], out=sums[_packed(i, k)])
+        sums[_packed(k, k), 0] += 1.0  # the start state's I
     rhs = sums[n_matrix : n_matrix + 2 * p].reshape(p, 2, m)
     np.multiply(weighted, e, out=rhs[:, 0])
     rhs[:, 1] = psi
@@ -1030,38 +1030,41 @@ def _solve_packed_in_place(matrix: FloatArray, rhs: FloatArray, p: int) -> Float
     """For a batch of SPD M given by its packed lower triangle (p(p+1)/2, m) and rhs (p, 2, m)
     holding [b, ψ]: overwrite rhs[:, 0] with M⁻¹b and return (bᵀM⁻¹b, ψᵀM⁻¹ψ), shape (2, m).
 
-    Cholesky M = LLᵀ column by column, each operation vectorised over the batch (numpy's
-    batched solve calls LAPACK once per matrix, measured ~5× slower at p = 6); in packed
-    column-major order every column's lower part is one contiguous block. M is destroyed.
+    Cholesky M = LLᵀ entry by entry, each operation vectorised over the batch (numpy's
+    batched solve calls LAPACK once per matrix, measured ~5× slower at p = 6). In row-major
+    packed order each row's L[i, :j] is one contiguous block, so every inner product of the
+    factorisation and of the forward solve is one einsum. M is destroyed.
     """
-    scratch = np.empty((p, matrix.shape[1]))
+    m = matrix.shape[1]
+    dot = np.empty((2, m))
+    scratch = np.empty((p, m))
 
-    def column(j: int, first: int) -> FloatArray:  # L[first:, j]
-        begin = _packed(p, first, j)
-        return matrix[begin : begin + p - first]
+    def row(i: int, stop: int) -> FloatArray:  # L[i, :stop]
+        begin = _packed(i, 0)
+        return matrix[begin : begin + stop]
 
-    for j in range(p):  # M = L Lᵀ, L over M's lower triangle
-        target = column(j, j)
-        for k in range(j):
-            np.multiply(column(k, j), matrix[_packed(p, j, k)], out=scratch[: p - j])
-            np.subtract(target, scratch[: p - j], out=target)
-        np.sqrt(target[0], out=target[0])
-        np.divide(target[1:], target[0], out=target[1:])
-    step = np.empty_like(rhs[1:])
-    for k in range(p):  # L Y = [b, ψ], column by column
-        np.divide(rhs[k], matrix[_packed(p, k, k)], out=rhs[k])
-        if k + 1 < p:
-            below = step[: p - k - 1]
-            np.multiply(column(k, k + 1)[:, None, :], rhs[k][None], out=below)
-            np.subtract(rhs[k + 1 :], below, out=rhs[k + 1 :])
+    for i in range(p):  # L[i, j] = (M[i, j] − L[i, :j]·L[j, :j]) / L[j, j]
+        for j in range(i + 1):
+            entry = matrix[_packed(i, j)]
+            if j:
+                np.einsum("km,km->m", row(i, j), row(j, j), out=dot[0])
+                np.subtract(entry, dot[0], out=entry)
+            if j == i:
+                np.sqrt(entry, out=entry)
+            else:
+                np.divide(entry, matrix[_packed(j, j)], out=entry)
+    for j in range(p):  # L Y = [b, ψ]
+        if j:
+            np.einsum("km,kcm->cm", row(j, j), rhs[:j], out=dot)
+            np.subtract(rhs[j], dot, out=rhs[j])
+        np.divide(rhs[j], matrix[_packed(j, j)], out=rhs[j])
     quadratic = np.einsum("ikm,ikm->km", rhs, rhs)  # ‖L⁻¹b‖² = bᵀM⁻¹b, and for ψ
     solution = rhs[:, 0]
-    one = scratch[0]
-    for j in range(p - 1, -1, -1):  # Lᵀ u = y, for b only
-        if j + 1 < p:
-            np.einsum("im,im->m", column(j, j + 1), solution[j + 1 :], out=one)
-            np.subtract(solution[j], one, out=solution[j])
-        np.divide(solution[j], matrix[_packed(p, j, j)], out=solution[j])
+    for i in range(p - 1, -1, -1):  # Lᵀ u = y, for b only, row by row of L
+        np.divide(solution[i], matrix[_packed(i, i)], out=solution[i])
+        if i:
+            np.multiply(row(i, i), solution[i], out=scratch[:i])
+            np.subtract(solution[:i], scratch[:i], out=solution[:i])
     return np.asarray(quadratic)
 
 
