@@ -20,10 +20,18 @@ R of a QR factorisation of all weighted rows [√w·φᵀ, √w·y] and prior ro
   p Givens rotations as numpy operations, even in a closed form vectorised over the rows,
   measured about 3× slower at p ≤ 12);
 - forgetting for Δt seconds is the exact scaling F ← F·√(2^(−Δt/h)) (irregular sampling is
-  handled because the decay depends on elapsed time, not on the number of samples);
+  handled because the decay depends on elapsed time, not on the number of samples); it is
+  kept as a number, F = g·G with g = 2^(−(t − t_g)/2h), and each row is absorbed into G
+  divided by g, so a sample costs no pass over F (g is multiplied into G when it falls
+  below 2⁻⁶⁴, and whenever other code reads the factor);
 - θ = R⁻¹z and φᵀPφ = ‖R⁻ᵀφ‖² are triangular solves; nothing is ever inverted in place, so
   the factor stays positive definite in exact arithmetic and orthogonal updates keep it so in
   floating point (the textbook update P ← (P − kφᵀP)/λ does not: it loses definiteness).
+  θ and the prior's penalty are solved once per change of G (a uniform scaling leaves them
+  as they are) and shared by the innovation, `coefficients`, `predict` and `residual_sd`.
+
+Per sample that is three LAPACK calls (R⁻ᵀφ, θ, `dtpqrt`) and a few small numpy operations;
+at p ≤ 12 each costs its call overhead rather than its flops (bench/RESULTS.md).
 
 Wind-up guard: the prior is never forgotten
 -------------------------------------------
@@ -65,8 +73,9 @@ Replay fast path
 `replay_batch` processes recorded rows in chunks short enough (≤ 1 half-life, bounded added
 information) that the normal equations *preconditioned by the chunk's exact starting factor*
 are well conditioned (condition ≤ 2·(2 + _CHUNK_TRACE)); every row's estimate within the chunk
-comes from vectorised prefix sums and a batched Cholesky solve, and the state at the chunk's
-end is recomputed exactly by one QR of all the chunk's rows stacked under the starting factor.
+comes from vectorised prefix sums (one cumulative sum per quantity) and a batched Cholesky
+solve over the packed triangles, and the state at the chunk's end is recomputed exactly by one
+structured QR (`dtpqrt`) of all the chunk's rows under the decayed starting factor.
 An exact window replays per sample (its rows leave one by one; no vectorised form is exact).
 
 Threads: every matrix here is at most 13 wide. Multi-threaded OpenBLAS gains nothing at that
