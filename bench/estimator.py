@@ -2,7 +2,7 @@
 
 Run from the repository root:
 
-    PYTHONPATH=daemon python bench/estimator.py            # full run, about 3 minutes
+    PYTHONPATH=daemon python bench/estimator.py            # full run, about 2 minutes
     PYTHONPATH=daemon python bench/estimator.py --quick    # 10x fewer rows, for a smoke test
 
 It prints, side by side in one run:
@@ -14,6 +14,11 @@ It prints, side by side in one run:
 3. the relative error of the fitted baseline after 1e6 per-sample updates, for both forms,
    against the weighted batch least-squares fit over the same rows (scipy lstsq of the
    √weight-scaled rows plus the prior's pseudo-rows).
+
+Timings on a shared machine move by tens of percent from one second to the next, so both
+sides of every ratio are measured in interleaved rounds (the order alternating) and the
+script prints each side's best and median and the median of the per-round ratios: a round
+sees about the same load on both sides, which makes that ratio the steadiest figure.
 
 OpenBLAS threads are limited to one unless the caller set them: every matrix here is at most
 13 wide, where threads only add hand-over cost (on a busy 2-core machine they made LAPACK
@@ -88,13 +93,20 @@ class Textbook:
         return float(error)
 
 
-def best_of(repeats: int, run: Callable[[], None]) -> float:
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        run()
-        times.append(time.perf_counter() - start)
-    return min(times)
+def seconds(run: Callable[[], object]) -> float:
+    start = time.perf_counter()
+    run()
+    return time.perf_counter() - start
+
+
+def interleaved(rounds: int, runs: list[Callable[[], object]]) -> np.ndarray:
+    """Seconds of each run in each round, shape (rounds, len(runs)); the order alternates."""
+    table = np.empty((rounds, len(runs)))
+    for r in range(rounds):
+        order = range(len(runs)) if r % 2 == 0 else reversed(range(len(runs)))
+        for index in order:
+            table[r, index] = seconds(runs[index])
+    return table
 
 
 def run_zeroline(p: int, rows: list[np.ndarray], ys: list[float], ts: list[float]) -> None:
@@ -109,37 +121,64 @@ def run_textbook(p: int, rows: list[np.ndarray], ys: list[float]) -> None:
         rls.update(phi, y)
 
 
-def per_update_costs(n: int, repeats: int = 7) -> None:
-    print(f"1. cost per update ({n} updates, best of {repeats}, the two forms interleaved),")
-    print("   half_life 7d, 1-min samples; zeroline's update also returns the innovation")
-    print(f"   {'p':>3} {'zeroline µs':>12} {'textbook µs':>12} {'ratio':>6}")
+def per_update_costs(n: int, rounds: int = 9) -> None:
+    print(f"1. cost per update ({n} updates; {rounds} interleaved rounds), half_life 7d,")
+    print("   1-min samples; zeroline's update also returns the innovation")
+    print(
+        f"   {'p':>3} {'zeroline µs best/median':>24} {'textbook µs best/median':>24}"
+        f" {'ratio of bests':>15} {'median ratio':>13}"
+    )
     for p in (2, 6, 12):
         phi, y, t = random_basis(n, p, seed=p)
         rows, ys, ts = list(phi), y.tolist(), t.tolist()
-        ours, theirs = math.inf, math.inf
-        for _ in range(repeats):
-            ours = min(ours, best_of(1, lambda: run_zeroline(p, rows, ys, ts)))  # noqa: B023
-            theirs = min(theirs, best_of(1, lambda: run_textbook(p, rows, ys)))  # noqa: B023
-        ours, theirs = ours / n * 1e6, theirs / n * 1e6
-        print(f"   {p:>3} {ours:>12.2f} {theirs:>12.2f} {ours / theirs:>6.2f}")
+        table = interleaved(
+            rounds,
+            [
+                lambda: run_zeroline(p, rows, ys, ts),  # noqa: B023 - called in this iteration
+                lambda: run_textbook(p, rows, ys),  # noqa: B023
+            ],
+        )
+        micro = table / n * 1e6
+        ours, theirs = micro[:, 0], micro[:, 1]
+        print(
+            f"   {p:>3} {ours.min():>11.2f} / {np.median(ours):>10.2f}"
+            f" {theirs.min():>11.2f} / {np.median(theirs):>10.2f}"
+            f" {ours.min() / theirs.min():>15.2f} {np.median(ours / theirs):>13.2f}"
+        )
 
 
-def replay_throughput(n: int) -> None:
-    print(f"2. replay of {n} samples at p = 6 (samples/s, best of 2)")
+def replay_throughput(n: int, rounds: int = 3) -> None:
+    print(f"2. replay of {n} samples at p = 6 ({rounds} interleaved rounds; samples/s)")
     phi, y, t = random_basis(n, 6, seed=60)
-    for label, half_life in (
-        ("zeroline replay_batch, half_life 7d", HALF_LIFE),
-        ("zeroline replay_batch, no forgetting", None),
-    ):
-
-        def replay(h: float | None = half_life) -> None:
-            replay_batch(RecursiveEstimator(6, half_life=h), phi, y, None, t)
-
-        print(f"   {label:<42} {n / best_of(2, replay):>12,.0f}")
-    start = time.perf_counter()
-    RecursiveLS(y, phi).filter()
-    seconds = time.perf_counter() - start
-    print(f"   {'statsmodels RecursiveLS.filter(), no forgetting':<42} {n / seconds:>12,.0f}")
+    labels = [
+        "zeroline replay_batch, half_life 7d",
+        "zeroline replay_batch, no forgetting",
+        "statsmodels RecursiveLS.filter(), no forg.",
+    ]
+    table = interleaved(
+        rounds,
+        [
+            lambda: replay_batch(RecursiveEstimator(6, half_life=HALF_LIFE), phi, y, None, t),
+            lambda: replay_batch(RecursiveEstimator(6), phi, y, None, t),
+            lambda: RecursiveLS(y, phi).filter(),
+        ],
+    )
+    rates = n / table
+    print(f"   {'path':<44} {'best':>11} {'median':>11}   per round")
+    for index, label in enumerate(labels):
+        per_round = " ".join(f"{rate:,.0f}" for rate in rates[:, index])
+        print(
+            f"   {label:<44} {rates[:, index].max():>11,.0f}"
+            f" {np.median(rates[:, index]):>11,.0f}   {per_round}"
+        )
+    for index, label in enumerate(labels[:2]):
+        ratios = rates[:, index] / rates[:, 2]
+        bests = rates[:, index].max() / rates[:, 2].max()
+        print(
+            f"   ratio to statsmodels, {label[23:]:<20} best/best {bests:5.1f}"
+            f"  median of rounds {np.median(ratios):5.1f}  rounds "
+            + " ".join(f"{r:.1f}" for r in ratios)
+        )
 
 
 def batch_baseline(
@@ -196,7 +235,8 @@ def main() -> None:
                 break
     print(
         f"machine: {os.cpu_count()} cores, {cpu}; Python {platform.python_version()}, "
-        f"numpy {np.__version__}, OPENBLAS_NUM_THREADS={os.environ['OPENBLAS_NUM_THREADS']}"
+        f"numpy {np.__version__}, OPENBLAS_NUM_THREADS={os.environ['OPENBLAS_NUM_THREADS']}, "
+        f"load average {os.getloadavg()[0]:.2f}"
     )
     per_update_costs(20_000 // scale)
     replay_throughput(1_000_000 // scale)

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import math
+from collections.abc import Callable
 
 import numpy as np
 import pytest
@@ -46,7 +47,9 @@ def relative(a: np.ndarray, b: np.ndarray) -> float:
     return float(np.max(np.abs(np.asarray(a) - b)) / np.max(np.abs(b)))
 
 
-def irregular_times(rng: np.random.Generator, n: int, mean_gap: float, start: float = 0.0):
+def irregular_times(
+    rng: np.random.Generator, n: int, mean_gap: float, start: float = 0.0
+) -> np.ndarray:
     """Loggers sample irregularly: exponential gaps, some repeated times, a few long outages."""
     gaps = rng.exponential(mean_gap, n)
     gaps[rng.random(n) < 0.02] = 0.0
@@ -149,6 +152,56 @@ class TestEquivalenceWithBatchFit:
         assert est.residual_sd == pytest.approx(expected, rel=1e-9)
         assert est.effective_n == pytest.approx(np.sum(decay), rel=1e-12)
         assert est.information_count == pytest.approx(np.sum(w * decay), rel=1e-12)
+
+    def test_hundreds_of_half_lives_equal_the_batch_fit(self) -> None:
+        """Over 250 half-lives the pending forgetting g (F = g·G) is multiplied into the
+        stored factor several times; after it the coefficients still equal the batch fit
+        (weights 2^(−age/h) + prior) to 1e-9, and φᵀPφ equals the batch covariance's."""
+        rng = np.random.default_rng(11)
+        n, gap, half_life = 15_000, 10.0, 600.0
+        t = np.arange(n) * gap
+        phi = np.column_stack([np.ones(n), rng.standard_normal(n), np.sin(t / 900.0)])
+        y = phi @ [4.0, -1.0, 0.5] + 0.01 * rng.standard_normal(n)
+        est = RecursiveEstimator(3, half_life=half_life)
+        for i in range(n):
+            est.update(phi[i], y[i], 1.0, t[i])
+        assert t[-1] / half_life > 3 * 64  # g fell below 2^-64 at least three times
+        decayed = 2.0 ** (-(t[-1] - t) / half_life)
+        reference = batch_fit(phi, y, decayed, est)
+        assert relative(est.coefficients, reference) < 1e-9
+        keep = decayed > NEGLIGIBLE
+        information = (phi[keep].T * decayed[keep]) @ phi[keep] + np.diag(
+            est.prior_weight / est.prior_sd**2
+        )
+        expected = float(phi[-1] @ np.linalg.solve(information, phi[-1]))
+        assert est.variance(phi[-1]) == pytest.approx(expected, rel=1e-9)
+
+    def test_cached_solution_follows_every_change(self) -> None:
+        """θ is solved once per change of the factor: it follows every update (prior top-ups
+        included: the batch fit agrees to 1e-10), a shift, a restore and a reset."""
+        rng = np.random.default_rng(12)
+        n = 3000
+        t = np.arange(n) * MINUTE
+        phi = np.column_stack([np.ones(n), rng.standard_normal(n)])
+        y = phi @ [1.0, 2.0] + 0.01 * rng.standard_normal(n)
+        est = RecursiveEstimator(2, half_life=6 * HOUR)
+        for i in range(n):
+            before = est.coefficients
+            est.update(phi[i], y[i], 1.0, t[i])
+            if i in (0, 1, 500, n - 1):
+                assert not np.array_equal(est.coefficients, before)
+        decayed = 2.0 ** (-(t[-1] - t) / (6 * HOUR))
+        assert relative(est.coefficients, batch_fit(phi, y, decayed, est)) < 1e-10
+        est.shift(0, 0.5)
+        assert est.coefficients[0] == pytest.approx(1.5, abs=1e-3)
+        assert est.predict([1.0, 0.0]) == pytest.approx(est.coefficients[0], rel=1e-14)
+        copy = RecursiveEstimator.from_state(json.loads(json.dumps(est.to_state())))
+        assert relative(copy.coefficients, est.coefficients) < 1e-14
+        est.reset()  # back to the prior, whose mean the shift moved
+        assert np.array_equal(est.coefficients, [0.5, 0.0])
+        returned = est.coefficients
+        returned[0] = 99.0  # a caller's array: changing it must not change the estimator
+        assert est.coefficients[0] == 0.5
 
 
 class TestAgainstStatsmodels:
@@ -412,7 +465,9 @@ class TestInterface:
             ),
         ],
     )
-    def test_bad_input_gives_one_clear_error(self, call, message: str) -> None:
+    def test_bad_input_gives_one_clear_error(
+        self, call: Callable[[RecursiveEstimator], object], message: str
+    ) -> None:
         """Each user mistake raises InputError saying what is wrong."""
         with pytest.raises(InputError, match=message):
             call(RecursiveEstimator(2, half_life=DAY))

@@ -82,9 +82,9 @@ def row_weights(stream: Stream, est: RecursiveEstimator, upto: int) -> np.ndarra
     """The weight each row 0..upto carries at row `upto` in the batch equivalent."""
     w, t = stream.w[: upto + 1], stream.t[: upto + 1]
     if est.half_life is not None:
-        return w * 2.0 ** (-(t[-1] - t) / est.half_life)
+        return np.asarray(w * 2.0 ** (-(t[-1] - t) / est.half_life))
     if est.window is not None:
-        return w * (t > t[-1] - est.window)
+        return np.asarray(w * (t > t[-1] - est.window))
     return w
 
 
@@ -103,7 +103,7 @@ def batch(stream: Stream, est: RecursiveEstimator, upto: int) -> np.ndarray:
     if np.count_nonzero(all_weights) > p:
         return fit_least_squares(design, target, all_weights).coefficients
     root = np.sqrt(all_weights)
-    return scipy.linalg.lstsq(design * root[:, None], target * root)[0]
+    return np.asarray(scipy.linalg.lstsq(design * root[:, None], target * root)[0])
 
 
 def close(a: np.ndarray, b: np.ndarray, tolerance: float, phi: np.ndarray) -> bool:

@@ -20,10 +20,18 @@ R of a QR factorisation of all weighted rows [√w·φᵀ, √w·y] and prior ro
   p Givens rotations as numpy operations, even in a closed form vectorised over the rows,
   measured about 3× slower at p ≤ 12);
 - forgetting for Δt seconds is the exact scaling F ← F·√(2^(−Δt/h)) (irregular sampling is
-  handled because the decay depends on elapsed time, not on the number of samples);
+  handled because the decay depends on elapsed time, not on the number of samples); it is
+  kept as a number, F = g·G with g = 2^(−(t − t_g)/2h), and each row is absorbed into G
+  divided by g, so a sample costs no pass over F (g is multiplied into G when it falls
+  below 2⁻⁶⁴, and whenever other code reads the factor);
 - θ = R⁻¹z and φᵀPφ = ‖R⁻ᵀφ‖² are triangular solves; nothing is ever inverted in place, so
   the factor stays positive definite in exact arithmetic and orthogonal updates keep it so in
   floating point (the textbook update P ← (P − kφᵀP)/λ does not: it loses definiteness).
+  θ and the prior's penalty are solved once per change of G (a uniform scaling leaves them
+  as they are) and shared by the innovation, `coefficients`, `predict` and `residual_sd`.
+
+Per sample that is three LAPACK calls (R⁻ᵀφ, θ, `dtpqrt`) and a few small numpy operations;
+at p ≤ 12 each costs its call overhead rather than its flops (bench/RESULTS.md).
 
 Wind-up guard: the prior is never forgotten
 -------------------------------------------
@@ -65,8 +73,9 @@ Replay fast path
 `replay_batch` processes recorded rows in chunks short enough (≤ 1 half-life, bounded added
 information) that the normal equations *preconditioned by the chunk's exact starting factor*
 are well conditioned (condition ≤ 2·(2 + _CHUNK_TRACE)); every row's estimate within the chunk
-comes from vectorised prefix sums and a batched Cholesky solve, and the state at the chunk's
-end is recomputed exactly by one QR of all the chunk's rows stacked under the starting factor.
+comes from vectorised prefix sums (one cumulative sum per quantity) and a batched Cholesky
+solve over the packed triangles, and the state at the chunk's end is recomputed exactly by one
+structured QR (`dtpqrt`) of all the chunk's rows under the decayed starting factor.
 An exact window replays per sample (its rows leave one by one; no vectorised form is exact).
 
 Threads: every matrix here is at most 13 wide. Multi-threaded OpenBLAS gains nothing at that
@@ -96,9 +105,10 @@ PRIOR_TOP_UP = 1.0 / 16.0
 STATE_VERSION = 1
 _MAX_TERMS = 64
 _BLOCK = 64  # window: rows per checkpoint of the front stack
-_CHUNK_ROWS = 8192  # replay: most rows in one vectorised chunk
+_CHUNK_ROWS = 16384  # replay: most rows in one vectorised chunk
 _CHUNK_MIN = 16  # replay: below this a chunk is not worth it; use the per-sample path
 _CHUNK_TRACE = 16.0  # replay: most information a chunk may add, relative to its start
+_G_FLOOR = 2.0**-64  # the forgetting g in F = g·G is multiplied into G below this
 
 
 class Innovation(NamedTuple):
@@ -133,10 +143,18 @@ class ReplayResult:
     residual: FloatArray
 
 
+# LAPACK handles fetched once; positional arguments, because f2py parses keywords slower.
+_dtpqrt = lapack.dtpqrt
+_dtrtrs = lapack.dtrtrs
+
+
 def _absorb(factor: FloatArray, rows: FloatArray) -> FloatArray:
-    """Return R of QR([factor; rows]) for upper-triangular `factor`; `rows` is destroyed."""
+    """Return R of QR([factor; rows]) for upper-triangular `factor`; `rows` is destroyed.
+
+    A Fortran-ordered `factor` is overwritten in place and returned (f2py's overwrite_a).
+    """
     n = factor.shape[0]
-    result, _, _, info = lapack.dtpqrt(0, n, factor, rows, overwrite_a=1, overwrite_b=1)
+    result, _, _, info = _dtpqrt(0, n, factor, rows, 1, 1)
     if info != 0:  # only for malformed arguments, which would be a bug here
         raise RuntimeError(f"dtpqrt failed with info={info}")
     return np.asarray(result)
@@ -225,6 +243,9 @@ class RecursiveEstimator:
         self._prior_center = self.prior_mean * self._scale  # prior mean, internal units
         self._prior_root = 1.0 / (self.prior_sd * self._scale)  # Λ, internal units
         self._row = np.zeros((1, p + 1), order="F")  # scratch for one absorbed row
+        self._row_x = self._row[0, :p]  # its φ part, a contiguous view
+        self._shape = (p,)
+        self._scale_outer = np.outer(self._scale, self._scale)
         self._time: float | None = None
         self._top_up_after = (
             math.inf if self.half_life is None else self.half_life * math.log2(1.0 + PRIOR_TOP_UP)
@@ -250,6 +271,43 @@ class RecursiveEstimator:
             self._checkpoints: list[FloatArray] = []
             self._inner: list[FloatArray] = []
             self._inner_block = -1
+
+    @property
+    def _factor(self) -> FloatArray:
+        """F = [[R, z], [0, ρ]] at the current time, Fortran order; LAPACK works on it in place.
+
+        Stored as F = g·G: forgetting only lowers the number g, and the hot path absorbs
+        each row divided by g into G, which saves a pass over F per sample (a uniform
+        scaling leaves every rotation and solve as it was). Reading `_factor` multiplies g
+        into G, so in-place changes to the returned array are changes of the state.
+        """
+        self._settle()
+        return self._f
+
+    @_factor.setter
+    def _factor(self, value: FloatArray) -> None:
+        """Set F as the factor at the current `_time` (set the time first)."""
+        p = self.n_terms
+        self._f = np.asfortranarray(value)
+        self._r = self._f[:, :p]  # R with its leading dimension p + 1, as dtrtrs takes it
+        self._z = self._f[:p, p]
+        self._g, self._g_time = 1.0, self._time
+        self._changed()
+
+    def _settle(self) -> None:
+        """Multiply the pending forgetting g into G, so that G = F."""
+        if self._g != 1.0:
+            self._f *= self._g
+            self._g, self._g_time = 1.0, self._time
+
+    def _changed(self) -> None:
+        """The factor changed other than by a uniform scaling: θ must be solved again.
+
+        Forgetting scales F uniformly, which leaves θ = R⁻¹z and the prior's penalty as they
+        are, so the cache survives it; every absorption, merge or shift clears it.
+        """
+        self._theta: FloatArray | None = None
+        self._penalty = math.nan
 
     def _prior_factor(self) -> FloatArray:
         p = self.n_terms
@@ -288,21 +346,37 @@ class RecursiveEstimator:
 
         Returns the innovation (before learning). A weight of 0 advances the clock only.
         """
-        x = self._internal(phi)
+        # The hot path: every check comes before any state changes, and the finiteness of φ
+        # is read off φᵀPφ, which the innovation needs anyway (R is finite and non-singular,
+        # so a NaN or infinity in φ always shows there).
+        x = np.asarray(phi, dtype=float)
+        if x.shape != self._shape:
+            raise InputError(f"phi must hold {self.n_terms} numbers, got shape {x.shape}")
+        if self.column_scale is not None:
+            x = x / self._scale
         y, weight = float(y), float(weight)
         if not math.isfinite(y):
             raise InputError(f"y must be a finite number, got {y!r}")
         if not math.isfinite(weight) or weight < 0:
             raise InputError(f"weight must be a finite number >= 0, got {weight!r}")
-        self._advance(self._checked_time(time))
-        innovation = self._innovation(x, y)
+        moment = self._checked_time(time)
+        a = _dtrtrs(self._r, x, 0, 1)[0]  # a = G⁻ᵀφ (R = g·G), before forgetting
+        quadratic = float(a.dot(a))  # φᵀPφ = ‖R⁻ᵀφ‖² = ‖G⁻ᵀφ‖² / g²
+        if not math.isfinite(quadratic):
+            raise InputError("phi must be finite numbers (no NaN, no infinity, not above 1e150)")
+        if self._advance(moment):  # the prior was topped up or rows left the window
+            a = _dtrtrs(self._r, x, 0, 1)[0]
+            quadratic = float(a.dot(a))
+        innovation = self._innovation(x, y, quadratic / (self._g * self._g))
         if weight > 0:
             self._learn(x, y, weight)
         return innovation
 
     def innovation(self, phi: ArrayLike, y: float) -> Innovation:
         """The innovation of φ, y against the current estimate, without learning anything."""
-        return self._innovation(self._internal(phi), float(y))
+        x = self._internal(phi)
+        a = _dtrtrs(self._r, x, 0, 1)[0]
+        return self._innovation(x, float(y), float(a.dot(a)) / (self._g * self._g))
 
     def _internal(self, phi: ArrayLike) -> FloatArray:
         x = np.asarray(phi, dtype=float)
@@ -324,23 +398,35 @@ class RecursiveEstimator:
             )
         return time
 
-    def _advance(self, time: float) -> None:
-        """Bring the state to `time`: forgetting and prior top-up, or window expiry."""
+    def _advance(self, time: float) -> bool:
+        """Bring the state to `time`: forgetting and prior top-up, or window expiry.
+
+        Returns True if G changed (forgetting only changes g, which leaves θ as it is).
+        """
         if self._time is None:
-            self._time = time
+            self._time = self._g_time = time
             self._prior_ref_time = time
-            return
+            return False
+        changed = False
         if self.window is not None:
-            self._expire(time - self.window)
+            changed = self._expire(time - self.window)
         elif self.half_life is not None and time > self._time:
             decay = 2.0 ** (-(time - self._time) / self.half_life)
-            self._factor *= math.sqrt(decay)  # F ← √λ·F: every row's weight times λ
             self._count *= decay
             self._information *= decay
+            assert self._g_time is not None
+            # F ← √λ·F as g = 2^(−(t − t_g)/2h): computed, not multiplied up, so it has
+            # no rounding drift; multiplied into G long before 1/g could overflow.
+            self._g = 2.0 ** (-(time - self._g_time) / (2.0 * self.half_life))
+            if self._g < _G_FLOOR:
+                self._time = time
+                self._settle()
         self._time = time
         assert self._prior_ref_time is not None
         if time - self._prior_ref_time > self._top_up_threshold(self._prior_ref_weight):
             self._top_up_prior()
+            changed = True
+        return changed
 
     def _top_up_threshold(self, ref_weight: float) -> float:
         """Top up when the time since the reference exceeds this (replay makes the same test)."""
@@ -355,12 +441,13 @@ class RecursiveEstimator:
         self._prior_ref_weight = 1.0 + PRIOR_TOP_UP
         self._prior_ref_time = self._time
 
-    def _innovation(self, x: FloatArray, y: float) -> Innovation:
-        p = self.n_terms
-        a = lapack.dtrtrs(self._factor[:, :p], x, trans=1)[0]  # a = R⁻ᵀφ
-        prediction = float(a @ self._factor[:p, p])  # φᵀθ = (R⁻ᵀφ)ᵀ z
-        baseline_variance = float(a @ a)  # φᵀPφ = ‖R⁻ᵀφ‖²
-        sd = self.residual_sd
+    def _innovation(self, x: FloatArray, y: float, baseline_variance: float) -> Innovation:
+        """The innovation of internal-unit x, y given φᵀPφ (`baseline_variance`)."""
+        theta = self._theta
+        if theta is None:
+            theta = self._solve()
+        prediction = float(x.dot(theta))  # φᵀθ
+        sd = self._residual_sd(self._penalty)
         variance = sd * sd * (1.0 + baseline_variance)
         residual = y - prediction
         standardised = residual / math.sqrt(variance) if variance > 0 else math.nan
@@ -368,21 +455,25 @@ class RecursiveEstimator:
 
     def _learn(self, x: FloatArray, y: float, weight: float) -> None:
         p = self.n_terms
-        root = math.sqrt(weight)
+        root = math.sqrt(weight) / self._g  # G absorbs the row divided by g
         row = self._row
-        np.multiply(x, root, out=row[0, :p])
+        np.multiply(x, root, out=self._row_x)
         row[0, p] = y * root
         if self.window is not None:
             assert self._time is not None
             self._back_rows.append((self._time, weight, row[0].copy()))
             self._back = _absorb(self._back, row.copy(order="F"))
-        self._factor = _absorb(self._factor, row)
+        # In place (G is Fortran-ordered float64), so the views of R and z stay valid.
+        info = _dtpqrt(0, p + 1, self._f, row, 1, 1)[3]
+        if info != 0:  # only for malformed arguments, which would be a bug here
+            raise RuntimeError(f"dtpqrt failed with info={info}")
+        self._theta = None
         self._count += 1.0
         self._information += weight
 
     # ------------------------------------------------------ exact window
-    def _expire(self, cutoff: float) -> None:
-        """Drop every row with time ≤ cutoff; the window is (t − window, t]."""
+    def _expire(self, cutoff: float) -> bool:
+        """Drop every row with time ≤ cutoff; the window is (t − window, t]. True if any."""
         expired = False
         while True:
             if self._head == len(self._front_times):
@@ -399,6 +490,7 @@ class RecursiveEstimator:
             self._factor = self._merged()
             if self._head == len(self._front_times) and not self._back_rows:
                 self._count, self._information = 0.0, 0.0  # no drift from repeated subtraction
+        return expired
 
     def _flip(self) -> None:
         """Move the back's rows to the front and checkpoint their suffix factors."""
@@ -444,13 +536,31 @@ class RecursiveEstimator:
         return merged if suffix is None else _absorb(merged, suffix.copy(order="F"))
 
     # ------------------------------------------------------------ results
+    def _solved(self) -> tuple[FloatArray, float]:
+        """θ = R⁻¹z (internal units; do not modify) and the prior's penalty ‖Λ(θ − μ)‖².
+
+        Solved once per change of the factor: the channel asks for the coefficients, the
+        prediction and σ̂ after every update, and the next innovation needs them again.
+        """
+        theta = self._theta
+        if theta is None:
+            theta = self._solve()
+        return theta, self._penalty
+
+    def _solve(self) -> FloatArray:
+        """Solve θ = R⁻¹z = G⁻¹z_G and the penalty into the cache; return θ."""
+        theta: FloatArray = _dtrtrs(self._r, self._z)[0]
+        offset = theta - self._prior_center
+        offset *= self._prior_root
+        self._theta, self._penalty = theta, float(offset.dot(offset))
+        return theta
+
     def _solution(self) -> FloatArray:
-        p = self.n_terms
-        return np.asarray(lapack.dtrtrs(self._factor[:, :p], self._factor[:p, p])[0])
+        return self._solved()[0]
 
     @property
     def coefficients(self) -> FloatArray:
-        """θ in the user's units (internal column scaling undone)."""
+        """θ in the user's units (internal column scaling undone); a new array each call."""
         return self._solution() / self._scale
 
     @property
@@ -459,7 +569,7 @@ class RecursiveEstimator:
         p = self.n_terms
         inverse = lapack.dtrtri(self._factor[:p, :p])[0]  # R⁻¹; P = R⁻¹R⁻ᵀ
         covariance = inverse @ inverse.T
-        return np.asarray(covariance / np.outer(self._scale, self._scale))
+        return np.asarray(covariance / self._scale_outer)
 
     def predict(self, phi: ArrayLike) -> float:
         """Baseline φᵀθ."""
@@ -470,9 +580,8 @@ class RecursiveEstimator:
 
         The published uncertainty of the baseline is √variance(φ)·residual_sd.
         """
-        p = self.n_terms
-        a = lapack.dtrtrs(self._factor[:, :p], self._internal(phi), trans=1)[0]
-        return float(a @ a)
+        a = _dtrtrs(self._r, self._internal(phi), 0, 1)[0]
+        return float(a.dot(a)) / (self._g * self._g)
 
     def information_matrix(self) -> FloatArray:
         """info = RᵀR = Σ w·2^(−age/h)·φφᵀ + prior, in the user's units.
@@ -487,11 +596,17 @@ class RecursiveEstimator:
     @property
     def residual_sd(self) -> float:
         """σ̂ = √(Σ w·2^(−age/h)·r² / (effective_n − p)) at the current θ; NaN until n > p."""
+        if self._count <= self.n_terms:
+            return math.nan
+        return self._residual_sd(self._solved()[1])
+
+    def _residual_sd(self, penalty: float) -> float:
+        """σ̂ given the prior's penalty at θ: the data's part of ρ² = min objective."""
         p = self.n_terms
         if self._count <= p:
             return math.nan
-        penalty = (self._solution() - self._prior_center) * self._prior_root
-        rss = self._factor[p, p] ** 2 - self.prior_weight * float(penalty @ penalty)
+        rho = self._g * self._f[p, p]
+        rss = rho * rho - self.prior_weight * penalty
         return math.sqrt(max(rss, 0.0) / (self._count - p))
 
     def condition_number(self) -> float:
@@ -521,6 +636,7 @@ class RecursiveEstimator:
         self._prior_center[term] += moved
         if self.window is None:
             self._factor[:p, p] += moved * self._factor[:p, term]  # z ← z + R·Δx
+            self._changed()
             return
         rows = self._window_rows()
         rows[:, 2 + p] += moved * rows[:, 2 + term]
@@ -727,6 +843,7 @@ class _Chunk:
     stop: int
     alpha: FloatArray  # decay 2^(−(t − t₀)/h) from the chunk's start state
     psi: FloatArray  # ψ = R₀⁻ᵀφ, shape (p, m), R₀ the start state's factor
+    inverse: FloatArray  # R₀⁻¹
 
 
 def _plan_chunk(
@@ -744,25 +861,49 @@ def _plan_chunk(
         stop = start + int(np.searchsorted(times[start:stop], est._time + est.half_life, "right"))
     p = est.n_terms
     alpha = _decay(est, times[start:stop])
-    psi = lapack.dtrtrs(est._factor[:, :p], np.asfortranarray(x[start:stop].T), trans=1)[0]
+    est._settle()  # G = F, so ψ = R₀⁻ᵀφ
+    # ψ by a product with R₀⁻¹, in rows of m (the layout every later step runs along):
+    # OpenBLAS's triangular solve with thousands of right-hand sides of size p measured
+    # ~35 ns per row against ~5 ns for the product, and the replay's results and end state
+    # agreed with the solve's to the last digits on raw-time [1, t, t²] and on columns
+    # scaled 1e-4..1e4 (measured).
+    inverse = lapack.dtrtri(est._factor[:p, :p])[0]
+    psi = inverse.T @ x[start:stop].T
     added = np.cumsum(weights[start:stop] / alpha * np.einsum("im,im->m", psi, psi))
     rows = int(np.searchsorted(added, _CHUNK_TRACE, "right"))
-    return _Chunk(start, start + rows, alpha[:rows], np.ascontiguousarray(psi[:, :rows]))
+    return _Chunk(start, start + rows, alpha[:rows], psi[:, :rows], inverse)
+
+
+def _first_top_up(times: FloatArray, low: int, ref_time: float, threshold: float) -> int:
+    """First index ≥ low with times[i] − ref_time > threshold (len if none), `_advance`'s test.
+
+    The test is monotone in i (times do not decrease), so a binary search finds it; the
+    two loops settle rounding at the boundary, so the answer is exactly `_advance`'s.
+    """
+    index = low + int(np.searchsorted(times[low:], ref_time + threshold, "right"))
+    while index > low and times[index - 1] - ref_time > threshold:
+        index -= 1
+    while index < len(times) and not times[index] - ref_time > threshold:
+        index += 1
+    return index
 
 
 def _prior_schedule(
     est: RecursiveEstimator, times: FloatArray, alpha: FloatArray
-) -> tuple[FloatArray, FloatArray, float, float | None]:
-    """Prior weight a after each row and C with a = α·(a₀ + C), top-ups as `_advance` does."""
+) -> tuple[FloatArray, list[int], list[float], float, float | None]:
+    """Prior weight a after each row, and the top-ups as `_advance` does them.
+
+    Returns a, the rows r of the top-ups and δ_r/α_r (δ the weight each adds; then
+    a = α·(a₀ + Σ_{r ≤ i} δ_r/α_r)), and the reference weight and time at the end.
+    """
     weight = np.empty(len(times))
-    refill = np.zeros(len(times))  # δ_r / α_r at each top-up row r
+    tops: list[int] = []
+    amounts: list[float] = []
     ref_weight, ref_time = est._prior_ref_weight, est._prior_ref_time
     assert ref_time is not None
     index = 0
     while index < len(times):
-        threshold = est._top_up_threshold(ref_weight)
-        later = np.flatnonzero((times[index:] - ref_time) > threshold)  # same test as _advance
-        top_up = len(times) if len(later) == 0 else index + int(later[0])
+        top_up = _first_top_up(times, index, ref_time, est._top_up_threshold(ref_weight))
         if est.half_life is not None:
             age = times[index:top_up] - ref_time
             weight[index:top_up] = ref_weight * np.exp2(-age / est.half_life)
@@ -772,11 +913,23 @@ def _prior_schedule(
             break
         assert est.half_life is not None
         current = ref_weight * 2.0 ** (-(times[top_up] - ref_time) / est.half_life)
-        refill[top_up] = (1.0 + PRIOR_TOP_UP - current) / alpha[top_up]
+        tops.append(top_up)
+        amounts.append((1.0 + PRIOR_TOP_UP - current) / alpha[top_up])
         ref_weight, ref_time = 1.0 + PRIOR_TOP_UP, float(times[top_up])
         weight[top_up] = ref_weight
         index = top_up + 1
-    return weight, np.cumsum(refill), ref_weight, ref_time
+    return weight, tops, amounts, ref_weight, ref_time
+
+
+def _packed(row: int, column: int) -> int:
+    """Position of the lower-triangle entry (row ≥ column) in row-major packed order."""
+    return row * (row + 1) // 2 + column
+
+
+def _packed_indices(p: int) -> tuple[FloatArray, FloatArray]:
+    """Row and column of each lower-triangle entry, in row-major packed order."""
+    pairs = [(row, column) for row in range(p) for column in range(row + 1)]
+    return np.array([r for r, _ in pairs]), np.array([c for _, c in pairs])
 
 
 def _replay_chunk(
@@ -795,96 +948,132 @@ def _replay_chunk(
 
         (I + Cᵢ·LᵀL + Σⱼ≤ᵢ dⱼψⱼψⱼᵀ) uᵢ = Cᵢ·Lᵀr + Σⱼ≤ᵢ dⱼψⱼeⱼ
 
-    and the minimum of the objective is αᵢ·(ρ₀² + Cᵢ·‖r‖² + Σ dⱼeⱼ² − bᵢᵀuᵢ).
+    (Cᵢ = Σ_{r ≤ i} δ_r/α_r over the prior's top-ups) and the minimum of the objective is
+    αᵢ·(ρ₀² + Cᵢ·‖r‖² + Σ dⱼeⱼ² − bᵢᵀuᵢ). Every prefix sum is one cumulative sum over a row
+    of `sums`: the start values (I, ρ₀², counts) and the top-ups are added to their rows'
+    entries before it, so no prefix needs a pass of its own.
     """
     p = est.n_terms
     start, stop, alpha, psi = chunk.start, chunk.stop, chunk.alpha, chunk.psi
+    m = stop - start
     rows, w, t, target = x[start:stop], weights[start:stop], times[start:stop], y[start:stop]
-    prior, topped, ref_weight, ref_time = _prior_schedule(est, t, alpha)
-    r0 = est._factor[:p, :p]
+    prior, tops, amounts, ref_weight, ref_time = _prior_schedule(est, t, alpha)
+    factor = est._factor
     x0 = est._solution()  # θ₀ (internal units)
-    e = target - rows @ x0
+    fitted = rows @ x0
+    e = target - fitted
     d = w / alpha
     prior_root, prior_center = est._prior_root, est._prior_center
-    lift = prior_root[:, None] * lapack.dtrtri(r0)[0]  # L = Λ R₀⁻¹
+    inverse = chunk.inverse
+    lift = prior_root[:, None] * inverse  # L = Λ R₀⁻¹
     prior_rhs = prior_root * (prior_center - x0)
-    gram, gvec = lift.T @ lift, lift.T @ prior_rhs
-    any_top_up = bool(topped[-1] > 0)
+    # Rows of `sums`: the packed lower triangle of each row's matrix, then the pairs
+    # (bₖ, ψₖ) for the solve, then Σ d e², the count and the information.
+    n_matrix = p * (p + 1) // 2
+    sums = np.empty((n_matrix + 2 * p + 3, m))
     weighted = psi * d
-    # Lower triangle of every row's matrix, built in place: (p, p, m).
-    matrix = np.empty((p, p, len(t)))
-    for i in range(p):
-        for j in range(i + 1):
-            np.multiply(weighted[i], psi[j], out=matrix[i, j])
-            np.cumsum(matrix[i, j], out=matrix[i, j])
-            if any_top_up:
-                matrix[i, j] += topped * gram[i, j]
-        matrix[i, i] += 1.0
-    rhs = np.empty((p, 2, len(t)))
-    np.cumsum(weighted * e, axis=1, out=rhs[:, 0])
-    if any_top_up:
-        rhs[:, 0] += topped * gvec[:, None]
+    for k in range(p):
+        for i in range(k, p):
+            np.multiply(weighted[i], psi[k], out=sums[_packed(i, k)])
+        sums[_packed(k, k), 0] += 1.0  # the start state's I
+    rhs = sums[n_matrix : n_matrix + 2 * p].reshape(p, 2, m)
+    np.multiply(weighted, e, out=rhs[:, 0])
     rhs[:, 1] = psi
-    rhs_before = rhs[:, 0].copy()  # the solve overwrites it
-    total = est._factor[p, p] ** 2 + np.cumsum(d * e * e) + topped * float(prior_rhs @ prior_rhs)
-    variance = _solve_spd_in_place(matrix, rhs) / alpha  # φᵀPφ = ψᵀM̃⁻¹ψ, M̃ = α·matrix
+    total, count, information = sums[n_matrix + 2 * p :]
+    np.multiply(d, e * e, out=total)
+    np.divide(w > 0, alpha, out=count)
+    information[:] = d
+    total[0] += factor[p, p] ** 2
+    count[0] += est._count
+    information[0] += est._information
+    if tops:
+        below, right = _packed_indices(p)
+        gram = (lift.T @ lift)[below, right]  # LᵀL, packed
+        refills = np.asarray(amounts)
+        sums[:n_matrix, tops] += np.outer(gram, refills)
+        rhs[:, 0, tops] += np.outer(lift.T @ prior_rhs, refills)
+        total[tops] += refills * float(prior_rhs @ prior_rhs)
+    np.cumsum(sums[:n_matrix], axis=1, out=sums[:n_matrix])
+    np.cumsum(rhs[:, 0], axis=1, out=rhs[:, 0])
+    np.cumsum(sums[n_matrix + 2 * p :], axis=1, out=sums[n_matrix + 2 * p :])
+    quadratic = _solve_packed_in_place(sums[:n_matrix], rhs, p)  # bᵀM⁻¹b, ψᵀM⁻¹ψ
+    variance = quadratic[1] / alpha  # φᵀPφ = ψᵀM̃⁻¹ψ, M̃ = α·matrix
+    objective = alpha * (total - quadratic[0])
     u = rhs[:, 0]
-    theta = x0[:, None] + lapack.dtrtrs(r0, np.asfortranarray(u))[0]  # internal units
-    objective = alpha * (total - np.einsum("im,im->m", rhs_before, u))
-    penalty = (theta - prior_center[:, None]) * prior_root[:, None]
-    rss = np.maximum(objective - prior * np.einsum("im,im->m", penalty, penalty), 0.0)
-    count = alpha * (est._count + np.cumsum((w > 0) / alpha))
-    information = alpha * (est._information + np.cumsum(d))
+    coefficients = out.coefficients[start:stop]
+    np.matmul(u.T, inverse.T, out=coefficients)  # θ = θ₀ + R₀⁻¹u, by rows
+    coefficients += x0
+    offset = coefficients - prior_center
+    offset *= offset
+    penalty = offset @ (prior_root * prior_root)  # ‖Λ(θ − μ)‖², a matrix-vector product
+    rss = np.maximum(objective - prior * penalty, 0.0)
+    if est.column_scale is not None:
+        coefficients /= est._scale
+    count *= alpha
     with np.errstate(invalid="ignore", divide="ignore"):
         sd = np.where(count > p, np.sqrt(rss / (count - p)), math.nan)
-    baseline = np.einsum("mi,im->m", rows, theta)
+    baseline = fitted + np.einsum("im,im->m", psi, u)  # φᵀθ = φᵀθ₀ + ψᵀu
     before = (target - baseline) / (1.0 - w * variance)  # e⁻ = e⁺ / (1 − w·φᵀPφ)
-    out.coefficients[start:stop] = (theta / est._scale[:, None]).T
     out.baseline[start:stop] = baseline
     out.variance[start:stop] = variance
     out.residual_sd[start:stop] = sd
     out.residual[start:stop] = before
     out.prediction[start:stop] = target - before
-    # Exact state at the chunk's end: one QR of every row (and the prior top-up) stacked.
-    parts = [math.sqrt(alpha[-1]) * est._factor]
-    if any_top_up:
-        parts.append(math.sqrt(alpha[-1] * topped[-1]) * est._prior_rows)
-    parts.append(np.column_stack([rows, target]) * np.sqrt(alpha[-1] * d)[:, None])
-    est._factor = _triangle(np.vstack(parts))
-    est._time = float(t[-1])
+    # Exact state at the chunk's end: the start factor, decayed, absorbs every row (and the
+    # prior's top-ups) in one structured QR.
+    end = alpha[-1]
+    stacked = np.empty((m + (p if tops else 0), p + 1), order="F")
+    scale = np.sqrt(end * d)
+    np.multiply(rows.T, scale, out=stacked[:m, :p].T)  # in the order of the output
+    np.multiply(target, scale, out=stacked[:m, p])
+    if tops:
+        stacked[m:] = math.sqrt(end * float(np.sum(amounts))) * est._prior_rows
+    top = np.asfortranarray(math.sqrt(end) * factor)
+    est._time = float(t[-1])  # first: the factor is set as the one at the current time
+    est._factor = _absorb(top, stacked)
     est._prior_ref_weight, est._prior_ref_time = ref_weight, ref_time
-    est._count, est._information = float(count[-1]), float(information[-1])
+    est._count, est._information = float(count[-1]), float(end * information[-1])
 
 
-def _solve_spd_in_place(matrix: FloatArray, rhs: FloatArray) -> FloatArray:
-    """For a batch of M (p, p, m), SPD by its lower triangle, and B = rhs (p, 2, m) holding
-    [b, ψ]: overwrite rhs[:, 0] with M⁻¹b and return ψᵀM⁻¹ψ = ‖L⁻¹ψ‖² (M = LLᵀ).
+def _solve_packed_in_place(matrix: FloatArray, rhs: FloatArray, p: int) -> FloatArray:
+    """For a batch of SPD M given by its packed lower triangle (p(p+1)/2, m) and rhs (p, 2, m)
+    holding [b, ψ]: overwrite rhs[:, 0] with M⁻¹b and return (bᵀM⁻¹b, ψᵀM⁻¹ψ), shape (2, m).
 
-    Cholesky column by column, each operation vectorised over the batch: numpy's batched
-    solve calls LAPACK once per matrix, which measured ~5× slower at p = 6. M is destroyed.
+    Cholesky M = LLᵀ entry by entry, each operation vectorised over the batch (numpy's
+    batched solve calls LAPACK once per matrix, measured ~5× slower at p = 6). In row-major
+    packed order each row's L[i, :j] is one contiguous block, so every inner product of the
+    factorisation and of the forward solve is one einsum. M is destroyed.
     """
-    p = matrix.shape[0]
-    scratch = np.empty_like(matrix[0])
-    for j in range(p):  # M = L Lᵀ, L in the lower triangle
-        for k in range(j):
-            np.multiply(matrix[j:, k], matrix[j, k], out=scratch[j:])
-            np.subtract(matrix[j:, j], scratch[j:], out=matrix[j:, j])
-        np.sqrt(matrix[j, j], out=matrix[j, j])
-        if j + 1 < p:
-            np.divide(matrix[j + 1 :, j], matrix[j, j], out=matrix[j + 1 :, j])
-    step = np.empty_like(rhs[0])
+    m = matrix.shape[1]
+    dot = np.empty((2, m))
+    scratch = np.empty((p, m))
+
+    def row(i: int, stop: int) -> FloatArray:  # L[i, :stop]
+        begin = _packed(i, 0)
+        return matrix[begin : begin + stop]
+
+    for i in range(p):  # L[i, j] = (M[i, j] − L[i, :j]·L[j, :j]) / L[j, j]
+        for j in range(i + 1):
+            entry = matrix[_packed(i, j)]
+            if j:
+                np.einsum("km,km->m", row(i, j), row(j, j), out=dot[0])
+                np.subtract(entry, dot[0], out=entry)
+            if j == i:
+                np.sqrt(entry, out=entry)
+            else:
+                np.divide(entry, matrix[_packed(j, j)], out=entry)
     for j in range(p):  # L Y = [b, ψ]
-        for k in range(j):
-            np.multiply(rhs[k], matrix[j, k], out=step)
-            np.subtract(rhs[j], step, out=rhs[j])
-        np.divide(rhs[j], matrix[j, j], out=rhs[j])
-    quadratic = np.einsum("im,im->m", rhs[:, 1], rhs[:, 1])  # ψᵀM⁻¹ψ = ‖L⁻¹ψ‖²
-    solution, one = rhs[:, 0], step[0]
-    for j in range(p - 1, -1, -1):  # Lᵀ x = y, for b only
-        for i in range(j + 1, p):
-            np.multiply(solution[i], matrix[i, j], out=one)
-            np.subtract(solution[j], one, out=solution[j])
-        np.divide(solution[j], matrix[j, j], out=solution[j])
+        if j:
+            np.einsum("km,kcm->cm", row(j, j), rhs[:j], out=dot)
+            np.subtract(rhs[j], dot, out=rhs[j])
+        np.divide(rhs[j], matrix[_packed(j, j)], out=rhs[j])
+    quadratic = np.einsum("ikm,ikm->km", rhs, rhs)  # ‖L⁻¹b‖² = bᵀM⁻¹b, and for ψ
+    solution = rhs[:, 0]
+    for i in range(p - 1, -1, -1):  # Lᵀ u = y, for b only, row by row of L
+        np.divide(solution[i], matrix[_packed(i, i)], out=solution[i])
+        if i:
+            np.multiply(row(i, i), solution[i], out=scratch[:i])
+            np.subtract(solution[:i], scratch[:i], out=solution[:i])
     return np.asarray(quadratic)
 
 
