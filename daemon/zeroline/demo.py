@@ -310,8 +310,17 @@ def run_demo(
             f"config: {config_path}\nwatch the topics with:\n  mosquitto_sub -h {host} -p "
             f"{port} -V {'mqttv311' if protocol == '3.1.1' else 'mqttv5'} -t '{PREFIX}/#' -v"
         )
-        _play(streams, offset, pace, host, port, protocol, board, out,
-              until_interrupt=duration is None)
+        _play(
+            streams,
+            offset,
+            pace,
+            host,
+            port,
+            protocol,
+            board,
+            out,
+            until_interrupt=duration is None,
+        )
         time.sleep(2.0)  # let the daemon finish the last readings
     finally:
         _stop_daemon(daemon)

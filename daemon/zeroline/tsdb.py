@@ -532,6 +532,15 @@ class TimeseriesSink:
         self._wake.set()
         return len(lines)
 
+    def flush(self) -> None:
+        """Make every point submitted so far durable in the spool (one write + fsync).
+
+        The daemon calls this before it acknowledges the readings behind the points, so a
+        point is on disk before the broker may forget its reading. Raises OSError if the
+        spool cannot be written: the caller must then not acknowledge."""
+        self._spool.flush()
+        self._wake.set()
+
     def stats(self) -> dict[str, int]:
         """Counters for /metrics and the health point."""
         counts = self._counts
