@@ -170,8 +170,8 @@ class StatusBoard:
                     f"zeroline_{name}", f"daemon counter {name}", "counter", float(value), labels
                 )
             )
-        for key, value in self._extra().items():
-            found.append(Metric(f"zeroline_{key}", f"daemon gauge {key}", "gauge", float(value)))
+        for gauge, level in self._extra().items():
+            found.append(Metric(f"zeroline_{gauge}", f"daemon gauge {gauge}", "gauge", level))
         for name in self.channel_names():
             status = self.channel_status(name)
             if status is not None:
