@@ -146,7 +146,7 @@ class Mosquitto:
     username: str | None = None
     password: str | None = None
     persistent: bool = False
-    max_inflight: int = 20
+    max_inflight: int = 100  # at least the daemon's broker.inflight (deploy notes)
     directory: Path = field(default_factory=lambda: Path(tempfile.mkdtemp(prefix="zl-mosq-")))
     process: subprocess.Popen[bytes] | None = None
     tls_files: TlsFiles | None = None
