@@ -305,9 +305,19 @@ class TestRestarts:
         assert wait_until(snapshot.exists, 10)
         publish_lines(broker, "site/a/gas", payload_lines(data[100:200]))
         assert subscriber.wait_count("/a-gas/corrected", 130, 20)
+        status = Subscriber(broker, "zeroline/status")
+
+        def last_status() -> str:
+            messages = status.messages("zeroline/status")
+            return messages[-1][1] if messages else ""
+
+        assert wait_until(lambda: last_status() == "online", 5)
         daemon.kill()  # mid-stream, after a snapshot: state = snapshot + journal
+        assert wait_until(lambda: last_status() == "offline", 5)  # the last will
         publish_lines(broker, "site/a/gas", payload_lines(data[200:]))  # daemon down
         daemon.start()
+        assert wait_until(lambda: last_status() == "online", 5)
+        status.stop()
         assert wait_until(lambda: len(corrected_by_time(subscriber, "a-gas")) >= len(data), 30)
         assert daemon.terminate() == 0
         seen = corrected_by_time(subscriber, "a-gas")

@@ -95,6 +95,7 @@ STATS_EVERY_S = 1.0
 ERROR_PAYLOAD_CHARS = 200
 TICK_S = 0.02
 COMMIT_WAIT_S = 0.001
+AWAITING_PER_QUEUE = 4  # processed-but-uncommitted messages allowed, per queue slot
 
 
 class OutputSink(Protocol):
@@ -250,7 +251,8 @@ class Service:
             self.failed.set()
 
     def _step(self) -> None:
-        if len(self._awaiting) >= self._queue.maxsize and not self._queue.full():
+        backlog = len(self._awaiting) >= AWAITING_PER_QUEUE * self._queue.maxsize
+        if backlog and not self._queue.full():
             # Too much processed but not yet committed: let the confirmations catch up.
             self._commit(force=True)
             time.sleep(COMMIT_WAIT_S)

@@ -146,10 +146,11 @@ class Mosquitto:
     username: str | None = None
     password: str | None = None
     persistent: bool = False
-    max_inflight: int = 20
+    max_inflight: int = 100  # at least the daemon's broker.inflight (deploy notes)
     directory: Path = field(default_factory=lambda: Path(tempfile.mkdtemp(prefix="zl-mosq-")))
     process: subprocess.Popen[bytes] | None = None
     tls_files: TlsFiles | None = None
+    subscribers: list[Subscriber] = field(default_factory=list)  # stopped by cleanup()
 
     def __post_init__(self) -> None:
         self.directory.chmod(0o755)
@@ -234,6 +235,8 @@ class Mosquitto:
                 self.process.wait(5)
 
     def cleanup(self) -> None:
+        for subscriber in self.subscribers:
+            subscriber.stop()
         self.stop()
         shutil.rmtree(self.directory, ignore_errors=True)
 
@@ -284,6 +287,7 @@ class Subscriber:
         for topic in topics:
             args += ["-t", topic]
         self.process = subprocess.Popen(args, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL)
+        broker.subscribers.append(self)  # mosquitto_sub retries forever: the broker stops it
         self.lines: list[str] = []
         self._lock = threading.Lock()
         self._reader = threading.Thread(target=self._read, daemon=True)
