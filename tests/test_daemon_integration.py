@@ -86,6 +86,7 @@ broker:
   inflight: 50
 {extra_broker}
 state: {{dir: {directory / "state"}, snapshot_every: 1s}}
+http: {{listen: "127.0.0.1:0"}}
 limits: {{queue: 200, max_payload_bytes: 65536}}
 logging: {{level: info}}
 channels:

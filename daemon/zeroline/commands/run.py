@@ -14,12 +14,15 @@ import signal
 import threading
 from typing import Any
 
-from zeroline.config import ConfigProblemsError, load_config
+from zeroline.config import Config, ConfigProblemsError, load_config
 from zeroline.errors import UserError
+from zeroline.http_status import StatusServer, start_http_server
 from zeroline.logs import setup_logging
 from zeroline.mqtt import BrokerSettings, PahoBroker
+from zeroline.outputs import StatusBoard, TimeseriesOutput, timeseries_config
 from zeroline.service import Service
 from zeroline.state import StateStore
+from zeroline.tsdb import TimeseriesSink
 
 _log = logging.getLogger("zeroline.run")
 
@@ -40,7 +43,18 @@ def run(args: argparse.Namespace) -> int:
         config.broker, config.output_prefix, int(config.limits["queue"])
     )
     store = StateStore(str(config.state["dir"]))
-    service = Service(config, PahoBroker(settings), store)
+    broker = PahoBroker(settings)
+    service = Service(config, broker, store)
+    board = StatusBoard(
+        channels=lambda: dict(service.table.channels),
+        counters=service.counters.as_dict,
+        ready=broker.connected.is_set,
+    )
+    service.sinks.append(board)
+    timeseries = _timeseries(config, service)
+    if timeseries is not None:
+        service.sinks.append(timeseries)
+    http = _http(config, board)
     stop, reload = threading.Event(), threading.Event()
     # Until the service runs (it may be waiting for an absent broker) a stop request simply
     # ends the process: nothing has been processed, the state on disk is as it was.
@@ -61,7 +75,29 @@ def run(args: argparse.Namespace) -> int:
             reload.clear()
             _reload(args.config, service)
     service.stop()
+    if http is not None:
+        http.stop()
     return EXIT_INTERNAL if service.failed.is_set() else EXIT_OK
+
+
+def _timeseries(config: Config, service: Service) -> TimeseriesOutput | None:
+    """The time-series output, when `timeseries:` is configured (its spool first)."""
+    settings = timeseries_config(config)
+    if settings is None:
+        return None
+    sink = TimeseriesSink(settings)
+    _log.info("time-series output to %s (spool %s)", settings.url, settings.spool_dir)
+    return TimeseriesOutput(sink, str(config.broker["client_id"]), service.counters.as_dict)
+
+
+def _http(config: Config, board: StatusBoard) -> StatusServer | None:
+    """The status page, /health, /ready, /metrics and /api (http.listen; off if empty)."""
+    listen = str(config.http["listen"] or "")
+    if listen in ("", "off"):
+        return None
+    server = start_http_server(board, listen, config.http.get("token_file"))
+    _log.info("status page on %s", server.url)
+    return server
 
 
 def _interrupt(signum: int, frame: Any) -> None:
