@@ -308,6 +308,7 @@ def run_demo(
     try:
         watcher = _watch(host, port, protocol, board)
         _wait_for(lambda: board.status == "online", 30, "the daemon did not come online")
+        out(f"status page: http://127.0.0.1:{http_port}/")
         out(
             f"config: {config_path}\nwatch the topics with:\n  mosquitto_sub -h {host} -p "
             f"{port} -V {'mqttv311' if protocol == '3.1.1' else 'mqttv5'} -t '{PREFIX}/#' -v"
