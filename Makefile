@@ -14,7 +14,7 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/zeroline demo --duration 60
+	$(BIN)/zeroline demo --duration 30
 
 example: $(STAMP)
 	$(BIN)/zeroline fit config/examples/pressure_log.csv --y value --basis config/examples/pressure_basis.yaml

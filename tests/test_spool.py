@@ -16,8 +16,10 @@ from zeroline.spool import Batch, Spool
 
 def make_lines(count: int, start: int = 0) -> list[str]:
     """Distinct line-protocol-like lines whose order is visible in their text."""
-    return [f"zeroline_reading,channel=c{i % 7} raw={i}.5 {1_700_000_000_000 + i}"
-            for i in range(start, start + count)]
+    return [
+        f"zeroline_reading,channel=c{i % 7} raw={i}.5 {1_700_000_000_000 + i}"
+        for i in range(start, start + count)
+    ]
 
 
 def drain(spool: Spool, batch_size: int) -> list[str]:

@@ -47,8 +47,15 @@ BASE_MS = 1_700_000_000_000  # first timestamp of numbered_readings, in ms (2023
 def config_for(
     tmp_path: Path, url: str = "http://127.0.0.1:9", **overrides: object
 ) -> TimeseriesConfig:
-    base = TimeseriesConfig(url=url, org="field", bucket="sensors", spool_dir=tmp_path / "spool",
-                            flush_interval_s=0.05, retry_initial_s=0.01, retry_max_s=0.05)
+    base = TimeseriesConfig(
+        url=url,
+        org="field",
+        bucket="sensors",
+        spool_dir=tmp_path / "spool",
+        flush_interval_s=0.05,
+        retry_initial_s=0.01,
+        retry_max_s=0.05,
+    )
     return replace(base, **overrides)  # type: ignore[arg-type]
 
 
@@ -86,8 +93,10 @@ class TestLineProtocol:
             (Point("m", {}, {"f": 3.0}, 5), "m f=3 5"),
             (Point("a b,c=d", {}, {"f": 1.0}, 1), r"a\ b\,c=d f=1 1"),
             (Point("m", {"k y": "v,x=1 2"}, {"f": 1.0}, 1), r"m,k\ y=v\,x\=1\ 2 f=1 1"),
-            (Point("m", {"b": "2", "a": "1"}, {"f=g h": -2.5e-8}, 1),
-             r"m,a=1,b=2 f\=g\ h=-2.5e-08 1"),
+            (
+                Point("m", {"b": "2", "a": "1"}, {"f=g h": -2.5e-8}, 1),
+                r"m,a=1,b=2 f\=g\ h=-2.5e-08 1",
+            ),
             (Point("m", {}, {"big": 2**62}, 1), f"m big={2**62}i 1"),
         ],
     )
@@ -102,9 +111,12 @@ class TestLineProtocol:
         tags=st.dictionaries(_names, _names, max_size=4),
         fields=st.dictionaries(
             _names,
-            st.one_of(st.floats(allow_nan=False, allow_infinity=False),
-                      st.integers(-(2**63), 2**63 - 1)),
-            min_size=1, max_size=4),
+            st.one_of(
+                st.floats(allow_nan=False, allow_infinity=False), st.integers(-(2**63), 2**63 - 1)
+            ),
+            min_size=1,
+            max_size=4,
+        ),
         time_ns=st.integers(0, NOW_NS),
     )
     def test_matches_influxdb_client_encoder(
@@ -117,6 +129,7 @@ class TestLineProtocol:
 
 
 # -- validation ----------------------------------------------------------------------------
+
 
 def good(**changes: object) -> Point:
     base = Point("zeroline_reading", {"channel": "c1", "site": "north"}, {"raw": 1.0}, NOW_NS)
@@ -184,9 +197,17 @@ class TestBuilders:
 
     def test_reading_point_schema(self) -> None:
         """Measured values become floats, quality an int, None and NaN are omitted."""
-        point = reading_point("c1", NOW_NS, raw=12, corrected=11.5, baseline=0.5,
-                              uncertainty=None, drift_rate=math.nan, quality=QARTOD_SUSPECT,
-                              labels={"site": "north"})
+        point = reading_point(
+            "c1",
+            NOW_NS,
+            raw=12,
+            corrected=11.5,
+            baseline=0.5,
+            uncertainty=None,
+            drift_rate=math.nan,
+            quality=QARTOD_SUSPECT,
+            labels={"site": "north"},
+        )
         assert point.measurement == "zeroline_reading"
         assert point.tags == {"channel": "c1", "site": "north"}
         assert point.fields == {"raw": 12.0, "corrected": 11.5, "baseline": 0.5, "quality": 3}
@@ -197,30 +218,77 @@ class TestBuilders:
     def test_reading_point_rejects_unknown_quality_and_reserved_label(self) -> None:
         """Quality must be a QARTOD code; a label may not override the channel tag."""
         with pytest.raises(InputError, match="QARTOD"):
-            reading_point("c1", NOW_NS, raw=1.0, corrected=1.0, baseline=0.0,
-                          uncertainty=0.1, drift_rate=0.0, quality=5)
+            reading_point(
+                "c1",
+                NOW_NS,
+                raw=1.0,
+                corrected=1.0,
+                baseline=0.0,
+                uncertainty=0.1,
+                drift_rate=0.0,
+                quality=5,
+            )
         with pytest.raises(InputError, match="label 'channel'"):
-            reading_point("c1", NOW_NS, raw=1.0, corrected=1.0, baseline=0.0,
-                          uncertainty=0.1, drift_rate=0.0, quality=1, labels={"channel": "x"})
+            reading_point(
+                "c1",
+                NOW_NS,
+                raw=1.0,
+                corrected=1.0,
+                baseline=0.0,
+                uncertainty=0.1,
+                drift_rate=0.0,
+                quality=1,
+                labels={"channel": "x"},
+            )
 
     def test_alert_point_schema(self) -> None:
         """An alert carries rule and severity as tags and active as 1/0."""
-        raised = alert_point("c1", NOW_NS, rule="drift_limit", severity="warning",
-                             active=True, value=15.2, limit=15, labels={"site": "north"})
-        cleared = alert_point("c1", NOW_NS, rule="drift_limit", severity="warning",
-                              active=False, value=None, limit=15.0)
-        assert raised.tags == {"site": "north", "channel": "c1", "rule": "drift_limit",
-                               "severity": "warning"}
+        raised = alert_point(
+            "c1",
+            NOW_NS,
+            rule="drift_limit",
+            severity="warning",
+            active=True,
+            value=15.2,
+            limit=15,
+            labels={"site": "north"},
+        )
+        cleared = alert_point(
+            "c1",
+            NOW_NS,
+            rule="drift_limit",
+            severity="warning",
+            active=False,
+            value=None,
+            limit=15.0,
+        )
+        assert raised.tags == {
+            "site": "north",
+            "channel": "c1",
+            "rule": "drift_limit",
+            "severity": "warning",
+        }
         assert raised.fields == {"active": 1, "value": 15.2, "limit": 15.0}
         assert cleared.fields == {"active": 0, "limit": 15.0}
         with pytest.raises(InputError, match="label 'rule'"):
-            alert_point("c1", NOW_NS, rule="drift_limit", severity="warning", active=True,
-                        value=1.0, limit=2.0, labels={"rule": "x"})
+            alert_point(
+                "c1",
+                NOW_NS,
+                rule="drift_limit",
+                severity="warning",
+                active=True,
+                value=1.0,
+                limit=2.0,
+                labels={"rule": "x"},
+            )
 
     def test_health_point_schema(self) -> None:
         """Health counters keep their types; missing ones are left out."""
-        point = health_point("gw01", NOW_NS, {"readings_in": 10, "queue_depth": 0,
-                                              "loop_lag_s": 0.25, "spool_bytes": None})
+        point = health_point(
+            "gw01",
+            NOW_NS,
+            {"readings_in": 10, "queue_depth": 0, "loop_lag_s": 0.25, "spool_bytes": None},
+        )
         assert point.tags == {"gateway": "gw01"}
         assert point.fields == {"readings_in": 10, "queue_depth": 0, "loop_lag_s": 0.25}
 
@@ -296,10 +364,20 @@ class ScriptedWriter:
 
 def numbered_readings(count: int, start: int = 0, scenario: str = "unit") -> list[Point]:
     """Readings whose value and timestamp both encode their index."""
-    return [reading_point("c1", (BASE_MS + i) * 10**6, raw=float(i), corrected=float(i),
-                          baseline=0.0, uncertainty=0.1, drift_rate=0.0, quality=QARTOD_PASS,
-                          labels={"scenario": scenario})
-            for i in range(start, start + count)]
+    return [
+        reading_point(
+            "c1",
+            (BASE_MS + i) * 10**6,
+            raw=float(i),
+            corrected=float(i),
+            baseline=0.0,
+            uncertainty=0.1,
+            drift_rate=0.0,
+            quality=QARTOD_PASS,
+            labels={"scenario": scenario},
+        )
+        for i in range(start, start + count)
+    ]
 
 
 def wait_for(condition: object, timeout: float) -> bool:
@@ -369,8 +447,9 @@ class TestSinkBehaviour:
         """During an outage the retry rate falls to about one per retry_max_s."""
         writer = ScriptedWriter()
         writer.up.clear()
-        sink = TimeseriesSink(config_for(tmp_path, retry_initial_s=0.05, retry_max_s=0.4),
-                              writer=writer)
+        sink = TimeseriesSink(
+            config_for(tmp_path, retry_initial_s=0.05, retry_max_s=0.4), writer=writer
+        )
         sink.submit(numbered_readings(10))
         time.sleep(3.0)
         requests = writer.requests
@@ -385,8 +464,7 @@ class TestSinkBehaviour:
         """A real client against a closed port: one log line per cause, no token in logs."""
         token_file = tmp_path / "token"
         token_file.write_text("s3cr3t-token-value\n")
-        config = config_for(tmp_path, url=f"http://127.0.0.1:{free_port()}",
-                            token_file=token_file)
+        config = config_for(tmp_path, url=f"http://127.0.0.1:{free_port()}", token_file=token_file)
         with caplog.at_level(logging.DEBUG):
             sink = TimeseriesSink(config)
             sink.submit(numbered_readings(5))
@@ -446,16 +524,45 @@ class TestVictoriaMetrics:
         t0 = ms_now_ns() - HOUR_NS
         sub_ms = 123_456  # dropped by the database: it keeps milliseconds
         labels = {"site": "north field, A=1", "probe": "ph-2"}
-        readings = [reading_point("ph 1", t0 + i * 10**9 + sub_ms, raw=7.0 + i / 8,
-                                  corrected=6.9 + i / 8, baseline=0.1, uncertainty=0.0125,
-                                  drift_rate=-2.5e-7, quality=QARTOD_PASS, labels=labels)
-                    for i in range(20)]
-        alerts = [alert_point("ph 1", t0 + 5 * 10**9, rule="drift_limit", severity="warning",
-                              active=True, value=0.75, limit=0.5, labels=labels),
-                  alert_point("ph 1", t0 + 9 * 10**9, rule="drift_limit", severity="warning",
-                              active=False, value=0.25, limit=0.5, labels=labels)]
-        health = health_point("gw01", t0, {"readings_in": 20, "spool_bytes": 4096,
-                                           "spool_dropped": 0})
+        readings = [
+            reading_point(
+                "ph 1",
+                t0 + i * 10**9 + sub_ms,
+                raw=7.0 + i / 8,
+                corrected=6.9 + i / 8,
+                baseline=0.1,
+                uncertainty=0.0125,
+                drift_rate=-2.5e-7,
+                quality=QARTOD_PASS,
+                labels=labels,
+            )
+            for i in range(20)
+        ]
+        alerts = [
+            alert_point(
+                "ph 1",
+                t0 + 5 * 10**9,
+                rule="drift_limit",
+                severity="warning",
+                active=True,
+                value=0.75,
+                limit=0.5,
+                labels=labels,
+            ),
+            alert_point(
+                "ph 1",
+                t0 + 9 * 10**9,
+                rule="drift_limit",
+                severity="warning",
+                active=False,
+                value=0.25,
+                limit=0.5,
+                labels=labels,
+            ),
+        ]
+        health = health_point(
+            "gw01", t0, {"readings_in": 20, "spool_bytes": 4096, "spool_dropped": 0}
+        )
         sink = TimeseriesSink(config_for(tmp_path, url=victoria.url))
         assert sink.submit([*readings, *alerts, health]) == 23
         sink.close(timeout=20)
@@ -469,8 +576,12 @@ class TestVictoriaMetrics:
             assert [t for t, _ in got.samples] == expected_times
             assert [v for _, v in got.samples] == [float(p.fields[name]) for p in readings]
         active = series["zeroline_alert_active"]
-        assert active.labels == {"channel": "ph 1", "rule": "drift_limit",
-                                 "severity": "warning", **labels}
+        assert active.labels == {
+            "channel": "ph 1",
+            "rule": "drift_limit",
+            "severity": "warning",
+            **labels,
+        }
         assert [v for _, v in active.samples] == [1.0, 0.0]
         assert [v for _, v in series["zeroline_alert_value"].samples] == [0.75, 0.25]
         assert series["zeroline_health_readings_in"].labels == {"gateway": "gw01"}
@@ -480,9 +591,19 @@ class TestVictoriaMetrics:
         """50,000 readings in batches of 5,000: all stored once; the rate is printed."""
         count = 50_000
         t0 = ms_now_ns() - HOUR_NS
-        points = [reading_point("c1", t0 + i * 10**6, raw=float(i), corrected=float(i),
-                                baseline=0.0, uncertainty=0.1, drift_rate=0.0, quality=1)
-                  for i in range(count)]
+        points = [
+            reading_point(
+                "c1",
+                t0 + i * 10**6,
+                raw=float(i),
+                corrected=float(i),
+                baseline=0.0,
+                uncertainty=0.1,
+                drift_rate=0.0,
+                quality=1,
+            )
+            for i in range(count)
+        ]
         sink = TimeseriesSink(config_for(tmp_path, url=victoria.url, batch_size=5000))
         started = time.perf_counter()
         for index in range(0, count, 500):
@@ -490,8 +611,10 @@ class TestVictoriaMetrics:
         assert wait_for(lambda: sink.stats()["points_written"] == count, timeout=60)
         elapsed = time.perf_counter() - started
         sink.close(timeout=10)
-        print(f"\n{count} points ({count * 6} samples) in {elapsed:.2f} s: "
-              f"{count / elapsed:,.0f} points/s")
+        print(
+            f"\n{count} points ({count * 6} samples) in {elapsed:.2f} s: "
+            f"{count / elapsed:,.0f} points/s"
+        )
         raw = by_name(victoria.export_after_flush('{__name__="zeroline_reading_raw"}'))
         samples = raw["zeroline_reading_raw"].samples
         assert [v for _, v in samples] == [float(i) for i in range(count)]
@@ -506,15 +629,20 @@ class TestVictoriaMetrics:
         after the database is back. Both must end with every point stored, in submission
         order, none twice (the server runs without deduplication, so a resend would show).
         """
-        common = {"batch_size": 500, "flush_interval_s": 0.2, "retry_initial_s": 0.2,
-                  "retry_max_s": 2.0}
+        common = {
+            "batch_size": 500,
+            "flush_interval_s": 0.2,
+            "retry_initial_s": 0.2,
+            "retry_max_s": 2.0,
+        }
         cfg_cont = config_for(tmp_path / "cont", url=victoria.url, **common)
         cfg_rest = config_for(tmp_path / "rest", url=victoria.url, **common)
         sent: dict[str, list[str]] = {"continuous": [], "restarted": []}
         written: dict[str, list[str]] = {"continuous": [], "restarted": []}
         continuous = recording_sink(cfg_cont, written["continuous"])
         restarted: dict[str, TimeseriesSink | None] = {
-            "sink": recording_sink(cfg_rest, written["restarted"])}
+            "sink": recording_sink(cfg_rest, written["restarted"])
+        }
         stop = threading.Event()
         lock = threading.Lock()
 
@@ -557,9 +685,11 @@ class TestVictoriaMetrics:
         continuous.close(timeout=30)
         new.close(timeout=30)
 
-        print(f"\noutage {outage_s:.1f} s; continuous: {len(sent['continuous'])} points, "
-              f"{failures_during_outage} failed requests; restarted: "
-              f"{len(sent['restarted'])} points")
+        print(
+            f"\noutage {outage_s:.1f} s; continuous: {len(sent['continuous'])} points, "
+            f"{failures_during_outage} failed requests; restarted: "
+            f"{len(sent['restarted'])} points"
+        )
         assert failures_during_outage >= 20  # it was really down, and retried (capped 2 s)
         for scenario in ("continuous", "restarted"):
             assert written[scenario] == sent[scenario], scenario
@@ -577,8 +707,9 @@ class TestVictoriaMetrics:
         sink keeps running and delivers the newest points once the database is back."""
         victoria.stop()
         max_bytes = 64 * 1024
-        config = config_for(tmp_path, url=victoria.url, spool_max_bytes=max_bytes,
-                            batch_size=200, retry_max_s=0.5)
+        config = config_for(
+            tmp_path, url=victoria.url, spool_max_bytes=max_bytes, batch_size=200, retry_max_s=0.5
+        )
         record: list[str] = []
         sink = recording_sink(config, record)
         points = numbered_readings(3000, scenario="full")
@@ -590,8 +721,10 @@ class TestVictoriaMetrics:
         victoria.start()
         later = numbered_readings(100, start=3000, scenario="full")
         sink.submit(later)
-        assert wait_for(lambda: sink.stats()["points_written"] + sink.stats()["spool_dropped"]
-                        == 3100, timeout=30), str(sink.stats())
+        assert wait_for(
+            lambda: sink.stats()["points_written"] + sink.stats()["spool_dropped"] == 3100,
+            timeout=30,
+        ), str(sink.stats())
         sink.close(timeout=10)
         assert sink.stats()["points_written"] == len(record) > 100
         index_of = {to_line_protocol(p): i for i, p in enumerate(points + later)}
@@ -605,4 +738,3 @@ class TestVictoriaMetrics:
         exported = by_name(victoria.export_after_flush('{__name__="zeroline_reading_raw"}'))
         values = [v for _, v in exported["zeroline_reading_raw"].samples]
         assert values == [float(i) for i in written]
-
