@@ -71,10 +71,12 @@ def replay_batch(
         estimator, phi, y, weights, times
     )
     n = len(y_array)
+    # Coefficients column-major: each term's series is contiguous, as the chunks write it.
     out = ReplayResult(
-        np.empty((n, p)), np.empty(n), np.empty(n), np.empty(n), np.empty(n), np.empty(n)
+        np.empty((p, n)).T, np.empty(n), np.empty(n), np.empty(n), np.empty(n), np.empty(n)
     )
-    x = phi_array / estimator._scale
+    # Internal units; without a column scale φ itself (a division would be a pass per row).
+    x = phi_array if estimator.column_scale is None else phi_array / estimator._scale
     start = 0
     while start < n:
         if estimator.window is not None or estimator._time is None:
@@ -231,9 +233,9 @@ def _prior_schedule(
     index = 0
     while index < len(times):
         top_up = _first_top_up(times, index, ref_time, est._top_up_threshold(ref_weight))
-        if est.half_life is not None:
-            age = times[index:top_up] - ref_time
-            weight[index:top_up] = ref_weight * np.exp2(-age / est.half_life)
+        if est.half_life is not None:  # a·2^(−(t − t_ref)/h) = a·2^(−(t₀ − t_ref)/h)·α
+            at_start = ref_weight * 2.0 ** (-(est._time - ref_time) / est.half_life)
+            np.multiply(alpha[index:top_up], at_start, out=weight[index:top_up])
         else:
             weight[index:top_up] = ref_weight
         if top_up == len(times):
@@ -299,10 +301,10 @@ def _replay_chunk(
     n_matrix = p * (p + 1) // 2
     sums = np.empty((n_matrix + 2 * p + 3, m))
     weighted = psi * d
-    for k in range(p):
-        for i in range(k, p):
-            np.multiply(weighted[i], psi[k], out=sums[_packed(i, k)])
-        sums[_packed(k, k), 0] += 1.0  # the start state's I
+    for i in range(p):  # row i of the packed triangle, dᵢψᵢψ[:i+1], in one product
+        begin = _packed(i, 0)
+        np.multiply(weighted[i], psi[: i + 1], out=sums[begin : begin + i + 1])
+        sums[_packed(i, i), 0] += 1.0  # the start state's I
     rhs = sums[n_matrix : n_matrix + 2 * p].reshape(p, 2, m)
     np.multiply(weighted, e, out=rhs[:, 0])
     rhs[:, 1] = psi
@@ -324,28 +326,32 @@ def _replay_chunk(
     np.cumsum(rhs[:, 0], axis=1, out=rhs[:, 0])
     np.cumsum(sums[n_matrix + 2 * p :], axis=1, out=sums[n_matrix + 2 * p :])
     quadratic = _solve_packed_in_place(sums[:n_matrix], rhs, p)  # bᵀM⁻¹b, ψᵀM⁻¹ψ
-    variance = quadratic[1] / alpha  # φᵀPφ = ψᵀM̃⁻¹ψ, M̃ = α·matrix
+    variance = np.divide(quadratic[1], alpha, out=out.variance[start:stop])  # φᵀPφ = ψᵀM̃⁻¹ψ
     objective = alpha * (total - quadratic[0])
     u = rhs[:, 0]
-    coefficients = out.coefficients[start:stop]
-    np.matmul(u.T, inverse.T, out=coefficients)  # θ = θ₀ + R₀⁻¹u, by rows
-    coefficients += x0
-    offset = coefficients - prior_center
-    offset *= offset
-    penalty = offset @ (prior_root * prior_root)  # ‖Λ(θ − μ)‖², a matrix-vector product
-    rss = np.maximum(objective - prior * penalty, 0.0)
+    # θ = θ₀ + R₀⁻¹u in the (p, m) layout of u, one matrix product; the offset from the
+    # prior mean is x0 − μ plus it, so the penalty needs no pass of its own for θ₀.
+    step = inverse @ u
+    offset = step + (x0 - prior_center)[:, None]
+    step += x0[:, None]
     if est.column_scale is not None:
-        coefficients /= est._scale
+        step /= est._scale[:, None]
+    out.coefficients[start:stop].T[...] = step  # contiguous rows: (n, p) is column-major
+    offset *= prior_root[:, None]
+    penalty = np.einsum("im,im->m", offset, offset)  # ‖Λ(θ − μ)‖²
+    rss = np.maximum(objective - prior * penalty, 0.0)
     count *= alpha
+    sd = out.residual_sd[start:stop]
     with np.errstate(invalid="ignore", divide="ignore"):
-        sd = np.where(count > p, np.sqrt(rss / (count - p)), math.nan)
-    baseline = fitted + np.einsum("im,im->m", psi, u)  # φᵀθ = φᵀθ₀ + ψᵀu
-    before = (target - baseline) / (1.0 - w * variance)  # e⁻ = e⁺ / (1 − w·φᵀPφ)
-    out.baseline[start:stop] = baseline
-    out.variance[start:stop] = variance
-    out.residual_sd[start:stop] = sd
-    out.residual[start:stop] = before
-    out.prediction[start:stop] = target - before
+        np.sqrt(rss / (count - p), out=sd)
+    sd[count <= p] = math.nan
+    baseline = out.baseline[start:stop]
+    np.einsum("im,im->m", psi, u, out=baseline)  # φᵀθ = φᵀθ₀ + ψᵀu
+    baseline += fitted
+    before = out.residual[start:stop]
+    np.subtract(target, baseline, out=before)
+    before /= 1.0 - w * variance  # e⁻ = e⁺ / (1 − w·φᵀPφ)
+    np.subtract(target, before, out=out.prediction[start:stop])
     # Exact state at the chunk's end: the start factor, decayed, absorbs every row (and the
     # prior's top-ups) in one structured QR.
     end = alpha[-1]
@@ -379,6 +385,7 @@ def _solve_packed_in_place(matrix: FloatArray, rhs: FloatArray, p: int) -> Float
         begin = _packed(i, 0)
         return matrix[begin : begin + stop]
 
+    reciprocal = np.empty((p, m))  # 1/L[j, j]: one division per column, products after
     for i in range(p):  # L[i, j] = (M[i, j] − L[i, :j]·L[j, :j]) / L[j, j]
         for j in range(i + 1):
             entry = matrix[_packed(i, j)]
@@ -387,17 +394,18 @@ def _solve_packed_in_place(matrix: FloatArray, rhs: FloatArray, p: int) -> Float
                 np.subtract(entry, dot[0], out=entry)
             if j == i:
                 np.sqrt(entry, out=entry)
+                np.divide(1.0, entry, out=reciprocal[i])
             else:
-                np.divide(entry, matrix[_packed(j, j)], out=entry)
+                np.multiply(entry, reciprocal[j], out=entry)
     for j in range(p):  # L Y = [b, ψ]
         if j:
             np.einsum("km,kcm->cm", row(j, j), rhs[:j], out=dot)
             np.subtract(rhs[j], dot, out=rhs[j])
-        np.divide(rhs[j], matrix[_packed(j, j)], out=rhs[j])
+        np.multiply(rhs[j], reciprocal[j], out=rhs[j])
     quadratic = np.einsum("ikm,ikm->km", rhs, rhs)  # ‖L⁻¹b‖² = bᵀM⁻¹b, and for ψ
     solution = rhs[:, 0]
     for i in range(p - 1, -1, -1):  # Lᵀ u = y, for b only, row by row of L
-        np.divide(solution[i], matrix[_packed(i, i)], out=solution[i])
+        np.multiply(solution[i], reciprocal[i], out=solution[i])
         if i:
             np.multiply(row(i, i), solution[i], out=scratch[:i])
             np.subtract(solution[:i], scratch[:i], out=solution[:i])
