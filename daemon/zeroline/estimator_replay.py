@@ -229,12 +229,13 @@ def _prior_schedule(
     tops: list[int] = []
     amounts: list[float] = []
     ref_weight, ref_time = est._prior_ref_weight, est._prior_ref_time
-    assert ref_time is not None
+    start_time = est._time  # α is measured from here
+    assert ref_time is not None and start_time is not None
     index = 0
     while index < len(times):
         top_up = _first_top_up(times, index, ref_time, est._top_up_threshold(ref_weight))
         if est.half_life is not None:  # a·2^(−(t − t_ref)/h) = a·2^(−(t₀ − t_ref)/h)·α
-            at_start = ref_weight * 2.0 ** (-(est._time - ref_time) / est.half_life)
+            at_start = ref_weight * 2.0 ** (-(start_time - ref_time) / est.half_life)
             np.multiply(alpha[index:top_up], at_start, out=weight[index:top_up])
         else:
             weight[index:top_up] = ref_weight
