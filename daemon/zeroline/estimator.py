@@ -70,13 +70,8 @@ so an automatic rescaling would not change a digit: the collinearity measure
 
 Replay fast path
 ----------------
-`replay_batch` processes recorded rows in chunks short enough (≤ 1 half-life, bounded added
-information) that the normal equations *preconditioned by the chunk's exact starting factor*
-are well conditioned (condition ≤ 2·(2 + _CHUNK_TRACE)); every row's estimate within the chunk
-comes from vectorised prefix sums (one cumulative sum per quantity) and a batched Cholesky
-solve over the packed triangles, and the state at the chunk's end is recomputed exactly by one
-structured QR (`dtpqrt`) of all the chunk's rows under the decayed starting factor.
-An exact window replays per sample (its rows leave one by one; no vectorised form is exact).
+`replay_batch` (module `zeroline.estimator_replay`, re-exported here) learns recorded rows in
+vectorised chunks, with every row's results and the same end state as per-sample `update`.
 
 Threads: every matrix here is at most 13 wide. Multi-threaded OpenBLAS gains nothing at that
 size and, on a busy 2-core gateway, waking its threads made single LAPACK calls with many
@@ -88,14 +83,16 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
-from typing import Any, NamedTuple
+from typing import TYPE_CHECKING, Any, NamedTuple
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.linalg import lapack
 
 from zeroline.errors import InputError
+
+if TYPE_CHECKING:  # the replay module imports this one; at run time see __getattr__ below
+    from zeroline.estimator_replay import ReplayResult, replay_batch
 
 FloatArray = NDArray[np.float64]
 
@@ -105,9 +102,6 @@ PRIOR_TOP_UP = 1.0 / 16.0
 STATE_VERSION = 1
 _MAX_TERMS = 64
 _BLOCK = 64  # window: rows per checkpoint of the front stack
-_CHUNK_ROWS = 16384  # replay: most rows in one vectorised chunk
-_CHUNK_MIN = 16  # replay: below this a chunk is not worth it; use the per-sample path
-_CHUNK_TRACE = 16.0  # replay: most information a chunk may add, relative to its start
 _G_FLOOR = 2.0**-64  # the forgetting g in F = g·G is multiplied into G below this
 
 
@@ -125,22 +119,6 @@ class Innovation(NamedTuple):
     baseline_variance: float
     variance: float
     standardised: float
-
-
-@dataclass(frozen=True, slots=True)
-class ReplayResult:
-    """Per-row results of `replay_batch`, each after that row was learnt.
-
-    `coefficients` (n, p) in the user's units, `baseline` φᵢᵀθᵢ, `variance` φᵢᵀPᵢφᵢ,
-    `residual_sd` σ̂ᵢ; `prediction` and `residual` are the innovation before the row.
-    """
-
-    coefficients: FloatArray
-    baseline: FloatArray
-    variance: FloatArray
-    residual_sd: FloatArray
-    prediction: FloatArray
-    residual: FloatArray
 
 
 # LAPACK handles fetched once; positional arguments, because f2py parses keywords slower.
@@ -725,356 +703,15 @@ class RecursiveEstimator:
         self._information = float(np.sum(rows[:, 1]))
 
 
-# =================================================================== replay fast path
-def replay_batch(
-    estimator: RecursiveEstimator,
-    phi: ArrayLike,
-    y: ArrayLike,
-    weights: ArrayLike | None = None,
-    times: ArrayLike | None = None,
-) -> ReplayResult:
-    """Learn rows phi (n, p), y (n) with fixed weights at times (n), as n calls of `update`.
+def __getattr__(name: str) -> Any:
+    """`replay_batch` and `ReplayResult` live in estimator_replay, which imports this module;
+    importing them lazily (PEP 562) keeps `from zeroline.estimator import replay_batch`
+    working whichever module is imported first."""
+    if name in ("replay_batch", "ReplayResult"):
+        from zeroline import estimator_replay
 
-    The estimator ends in the same state as after the per-sample calls and the returned
-    per-row arrays equal theirs (measured ≤ 5e-12 relative on well-conditioned bases). With
-    forgetting or none the work is vectorised in chunks; an exact window replays per sample.
-    """
-    p = estimator.n_terms
-    phi_array, y_array, weight_array, time_array = _validated_rows(
-        estimator, phi, y, weights, times
-    )
-    n = len(y_array)
-    out = ReplayResult(
-        np.empty((n, p)), np.empty(n), np.empty(n), np.empty(n), np.empty(n), np.empty(n)
-    )
-    x = phi_array / estimator._scale
-    start = 0
-    while start < n:
-        if estimator.window is not None or estimator._time is None:
-            stop = n if estimator.window is not None else start + 1
-            _replay_per_sample(
-                estimator, phi_array, y_array, weight_array, time_array, start, stop, out
-            )
-            start = stop
-            continue
-        chunk = _plan_chunk(estimator, x, weight_array, time_array, start)
-        if chunk.stop - chunk.start < _CHUNK_MIN:
-            stop = min(n, start + _CHUNK_MIN)
-            _replay_per_sample(
-                estimator, phi_array, y_array, weight_array, time_array, start, stop, out
-            )
-        else:
-            stop = chunk.stop
-            _replay_chunk(estimator, x, y_array, weight_array, chunk, time_array, out)
-        start = stop
-    return out
-
-
-def _validated_rows(
-    est: RecursiveEstimator,
-    phi: ArrayLike,
-    y: ArrayLike,
-    weights: ArrayLike | None,
-    times: ArrayLike | None,
-) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
-    phi_array = np.asarray(phi, dtype=float)
-    y_array = np.asarray(y, dtype=float)
-    n = len(y_array)
-    if y_array.shape != (n,) or phi_array.shape != (n, est.n_terms):
-        raise InputError(
-            f"replay needs phi of shape (n, {est.n_terms}) and y of shape (n,), "
-            f"got {phi_array.shape} and {y_array.shape}"
-        )
-    weight_array = np.ones(n) if weights is None else np.asarray(weights, dtype=float)
-    last = 0.0 if est.time is None else est.time
-    time_array = np.full(n, last) if times is None else np.asarray(times, dtype=float)
-    if weight_array.shape != (n,) or time_array.shape != (n,):
-        raise InputError(f"replay needs weights and times of shape ({n},)")
-    for name, array in (
-        ("phi", phi_array),
-        ("y", y_array),
-        ("weights", weight_array),
-        ("times", time_array),
-    ):
-        if not np.all(np.isfinite(array)):
-            raise InputError(f"replay {name} must be finite numbers (found NaN or infinity)")
-    if np.any(weight_array < 0):
-        raise InputError("replay weights must be >= 0")
-    if n and (
-        np.any(np.diff(time_array) < 0) or (est.time is not None and time_array[0] < est.time)
-    ):
-        raise InputError("replay times must not decrease (nor start before the last update)")
-    return phi_array, y_array, weight_array, time_array
-
-
-def _replay_per_sample(
-    est: RecursiveEstimator,
-    phi: FloatArray,
-    y: FloatArray,
-    weights: FloatArray,
-    times: FloatArray,
-    start: int,
-    stop: int,
-    out: ReplayResult,
-) -> None:
-    for i in range(start, stop):
-        innovation = est.update(phi[i], y[i], weights[i], times[i])
-        out.coefficients[i] = est.coefficients
-        out.baseline[i] = phi[i] @ out.coefficients[i]
-        out.variance[i] = est.variance(phi[i])
-        out.residual_sd[i] = est.residual_sd
-        out.prediction[i] = innovation.prediction
-        out.residual[i] = innovation.residual
-
-
-def _decay(est: RecursiveEstimator, times: FloatArray) -> FloatArray:
-    """2^(−(t − t_start)/h) for the rows of a chunk (ones without forgetting)."""
-    assert est._time is not None
-    if est.half_life is None:
-        return np.ones(len(times))
-    return np.asarray(np.exp2(-(times - est._time) / est.half_life))
-
-
-@dataclass(frozen=True, slots=True)
-class _Chunk:
-    """Rows start..stop−1 of a replay and what their planning already computed."""
-
-    start: int
-    stop: int
-    alpha: FloatArray  # decay 2^(−(t − t₀)/h) from the chunk's start state
-    psi: FloatArray  # ψ = R₀⁻ᵀφ, shape (p, m), R₀ the start state's factor
-    inverse: FloatArray  # R₀⁻¹
-
-
-def _plan_chunk(
-    est: RecursiveEstimator, x: FloatArray, weights: FloatArray, times: FloatArray, start: int
-) -> _Chunk:
-    """The longest run of rows from `start` that keeps the chunk's equations well conditioned.
-
-    In u = R₀(θ − θ₀) the start state is the identity; a chunk may span at most one half-life
-    (decay ≥ 1/2) and add information of trace at most _CHUNK_TRACE, so the condition number
-    of every row's matrix stays below 2·(2 + _CHUNK_TRACE).
-    """
-    assert est._time is not None
-    stop = min(len(times), start + _CHUNK_ROWS)
-    if est.half_life is not None:
-        stop = start + int(np.searchsorted(times[start:stop], est._time + est.half_life, "right"))
-    p = est.n_terms
-    alpha = _decay(est, times[start:stop])
-    est._settle()  # G = F, so ψ = R₀⁻ᵀφ
-    # ψ by a product with R₀⁻¹, in rows of m (the layout every later step runs along):
-    # OpenBLAS's triangular solve with thousands of right-hand sides of size p measured
-    # ~35 ns per row against ~5 ns for the product, and the replay's results and end state
-    # agreed with the solve's to the last digits on raw-time [1, t, t²] and on columns
-    # scaled 1e-4..1e4 (measured).
-    inverse = lapack.dtrtri(est._factor[:p, :p])[0]
-    psi = inverse.T @ x[start:stop].T
-    added = np.cumsum(weights[start:stop] / alpha * np.einsum("im,im->m", psi, psi))
-    rows = int(np.searchsorted(added, _CHUNK_TRACE, "right"))
-    return _Chunk(start, start + rows, alpha[:rows], psi[:, :rows], inverse)
-
-
-def _first_top_up(times: FloatArray, low: int, ref_time: float, threshold: float) -> int:
-    """First index ≥ low with times[i] − ref_time > threshold (len if none), `_advance`'s test.
-
-    The test is monotone in i (times do not decrease), so a binary search finds it; the
-    two loops settle rounding at the boundary, so the answer is exactly `_advance`'s.
-    """
-    index = low + int(np.searchsorted(times[low:], ref_time + threshold, "right"))
-    while index > low and times[index - 1] - ref_time > threshold:
-        index -= 1
-    while index < len(times) and not times[index] - ref_time > threshold:
-        index += 1
-    return index
-
-
-def _prior_schedule(
-    est: RecursiveEstimator, times: FloatArray, alpha: FloatArray
-) -> tuple[FloatArray, list[int], list[float], float, float | None]:
-    """Prior weight a after each row, and the top-ups as `_advance` does them.
-
-    Returns a, the rows r of the top-ups and δ_r/α_r (δ the weight each adds; then
-    a = α·(a₀ + Σ_{r ≤ i} δ_r/α_r)), and the reference weight and time at the end.
-    """
-    weight = np.empty(len(times))
-    tops: list[int] = []
-    amounts: list[float] = []
-    ref_weight, ref_time = est._prior_ref_weight, est._prior_ref_time
-    assert ref_time is not None
-    index = 0
-    while index < len(times):
-        top_up = _first_top_up(times, index, ref_time, est._top_up_threshold(ref_weight))
-        if est.half_life is not None:
-            age = times[index:top_up] - ref_time
-            weight[index:top_up] = ref_weight * np.exp2(-age / est.half_life)
-        else:
-            weight[index:top_up] = ref_weight
-        if top_up == len(times):
-            break
-        assert est.half_life is not None
-        current = ref_weight * 2.0 ** (-(times[top_up] - ref_time) / est.half_life)
-        tops.append(top_up)
-        amounts.append((1.0 + PRIOR_TOP_UP - current) / alpha[top_up])
-        ref_weight, ref_time = 1.0 + PRIOR_TOP_UP, float(times[top_up])
-        weight[top_up] = ref_weight
-        index = top_up + 1
-    return weight, tops, amounts, ref_weight, ref_time
-
-
-def _packed(row: int, column: int) -> int:
-    """Position of the lower-triangle entry (row ≥ column) in row-major packed order."""
-    return row * (row + 1) // 2 + column
-
-
-def _packed_indices(p: int) -> tuple[FloatArray, FloatArray]:
-    """Row and column of each lower-triangle entry, in row-major packed order."""
-    pairs = [(row, column) for row in range(p) for column in range(row + 1)]
-    return np.array([r for r, _ in pairs]), np.array([c for _, c in pairs])
-
-
-def _replay_chunk(
-    est: RecursiveEstimator,
-    x: FloatArray,
-    y: FloatArray,
-    weights: FloatArray,
-    chunk: _Chunk,
-    times: FloatArray,
-    out: ReplayResult,
-) -> None:
-    """A chunk's rows at once, in coordinates u = R₀(θ − θ₀) of the chunk's start state.
-
-    With d = w/α, e = y − φᵀθ₀, L = Λ R₀⁻¹ the prior rows and r their residual at θ₀, the
-    normal equations of row i, divided by αᵢ, are
-
-        (I + Cᵢ·LᵀL + Σⱼ≤ᵢ dⱼψⱼψⱼᵀ) uᵢ = Cᵢ·Lᵀr + Σⱼ≤ᵢ dⱼψⱼeⱼ
-
-    (Cᵢ = Σ_{r ≤ i} δ_r/α_r over the prior's top-ups) and the minimum of the objective is
-    αᵢ·(ρ₀² + Cᵢ·‖r‖² + Σ dⱼeⱼ² − bᵢᵀuᵢ). Every prefix sum is one cumulative sum over a row
-    of `sums`: the start values (I, ρ₀², counts) and the top-ups are added to their rows'
-    entries before it, so no prefix needs a pass of its own.
-    """
-    p = est.n_terms
-    start, stop, alpha, psi = chunk.start, chunk.stop, chunk.alpha, chunk.psi
-    m = stop - start
-    rows, w, t, target = x[start:stop], weights[start:stop], times[start:stop], y[start:stop]
-    prior, tops, amounts, ref_weight, ref_time = _prior_schedule(est, t, alpha)
-    factor = est._factor
-    x0 = est._solution()  # θ₀ (internal units)
-    fitted = rows @ x0
-    e = target - fitted
-    d = w / alpha
-    prior_root, prior_center = est._prior_root, est._prior_center
-    inverse = chunk.inverse
-    lift = prior_root[:, None] * inverse  # L = Λ R₀⁻¹
-    prior_rhs = prior_root * (prior_center - x0)
-    # Rows of `sums`: the packed lower triangle of each row's matrix, then the pairs
-    # (bₖ, ψₖ) for the solve, then Σ d e², the count and the information.
-    n_matrix = p * (p + 1) // 2
-    sums = np.empty((n_matrix + 2 * p + 3, m))
-    weighted = psi * d
-    for k in range(p):
-        for i in range(k, p):
-            np.multiply(weighted[i], psi[k], out=sums[_packed(i, k)])
-        sums[_packed(k, k), 0] += 1.0  # the start state's I
-    rhs = sums[n_matrix : n_matrix + 2 * p].reshape(p, 2, m)
-    np.multiply(weighted, e, out=rhs[:, 0])
-    rhs[:, 1] = psi
-    total, count, information = sums[n_matrix + 2 * p :]
-    np.multiply(d, e * e, out=total)
-    np.divide(w > 0, alpha, out=count)
-    information[:] = d
-    total[0] += factor[p, p] ** 2
-    count[0] += est._count
-    information[0] += est._information
-    if tops:
-        below, right = _packed_indices(p)
-        gram = (lift.T @ lift)[below, right]  # LᵀL, packed
-        refills = np.asarray(amounts)
-        sums[:n_matrix, tops] += np.outer(gram, refills)
-        rhs[:, 0, tops] += np.outer(lift.T @ prior_rhs, refills)
-        total[tops] += refills * float(prior_rhs @ prior_rhs)
-    np.cumsum(sums[:n_matrix], axis=1, out=sums[:n_matrix])
-    np.cumsum(rhs[:, 0], axis=1, out=rhs[:, 0])
-    np.cumsum(sums[n_matrix + 2 * p :], axis=1, out=sums[n_matrix + 2 * p :])
-    quadratic = _solve_packed_in_place(sums[:n_matrix], rhs, p)  # bᵀM⁻¹b, ψᵀM⁻¹ψ
-    variance = quadratic[1] / alpha  # φᵀPφ = ψᵀM̃⁻¹ψ, M̃ = α·matrix
-    objective = alpha * (total - quadratic[0])
-    u = rhs[:, 0]
-    coefficients = out.coefficients[start:stop]
-    np.matmul(u.T, inverse.T, out=coefficients)  # θ = θ₀ + R₀⁻¹u, by rows
-    coefficients += x0
-    offset = coefficients - prior_center
-    offset *= offset
-    penalty = offset @ (prior_root * prior_root)  # ‖Λ(θ − μ)‖², a matrix-vector product
-    rss = np.maximum(objective - prior * penalty, 0.0)
-    if est.column_scale is not None:
-        coefficients /= est._scale
-    count *= alpha
-    with np.errstate(invalid="ignore", divide="ignore"):
-        sd = np.where(count > p, np.sqrt(rss / (count - p)), math.nan)
-    baseline = fitted + np.einsum("im,im->m", psi, u)  # φᵀθ = φᵀθ₀ + ψᵀu
-    before = (target - baseline) / (1.0 - w * variance)  # e⁻ = e⁺ / (1 − w·φᵀPφ)
-    out.baseline[start:stop] = baseline
-    out.variance[start:stop] = variance
-    out.residual_sd[start:stop] = sd
-    out.residual[start:stop] = before
-    out.prediction[start:stop] = target - before
-    # Exact state at the chunk's end: the start factor, decayed, absorbs every row (and the
-    # prior's top-ups) in one structured QR.
-    end = alpha[-1]
-    stacked = np.empty((m + (p if tops else 0), p + 1), order="F")
-    scale = np.sqrt(end * d)
-    np.multiply(rows.T, scale, out=stacked[:m, :p].T)  # in the order of the output
-    np.multiply(target, scale, out=stacked[:m, p])
-    if tops:
-        stacked[m:] = math.sqrt(end * float(np.sum(amounts))) * est._prior_rows
-    top = np.asfortranarray(math.sqrt(end) * factor)
-    est._time = float(t[-1])  # first: the factor is set as the one at the current time
-    est._factor = _absorb(top, stacked)
-    est._prior_ref_weight, est._prior_ref_time = ref_weight, ref_time
-    est._count, est._information = float(count[-1]), float(end * information[-1])
-
-
-def _solve_packed_in_place(matrix: FloatArray, rhs: FloatArray, p: int) -> FloatArray:
-    """For a batch of SPD M given by its packed lower triangle (p(p+1)/2, m) and rhs (p, 2, m)
-    holding [b, ψ]: overwrite rhs[:, 0] with M⁻¹b and return (bᵀM⁻¹b, ψᵀM⁻¹ψ), shape (2, m).
-
-    Cholesky M = LLᵀ entry by entry, each operation vectorised over the batch (numpy's
-    batched solve calls LAPACK once per matrix, measured ~5× slower at p = 6). In row-major
-    packed order each row's L[i, :j] is one contiguous block, so every inner product of the
-    factorisation and of the forward solve is one einsum. M is destroyed.
-    """
-    m = matrix.shape[1]
-    dot = np.empty((2, m))
-    scratch = np.empty((p, m))
-
-    def row(i: int, stop: int) -> FloatArray:  # L[i, :stop]
-        begin = _packed(i, 0)
-        return matrix[begin : begin + stop]
-
-    for i in range(p):  # L[i, j] = (M[i, j] − L[i, :j]·L[j, :j]) / L[j, j]
-        for j in range(i + 1):
-            entry = matrix[_packed(i, j)]
-            if j:
-                np.einsum("km,km->m", row(i, j), row(j, j), out=dot[0])
-                np.subtract(entry, dot[0], out=entry)
-            if j == i:
-                np.sqrt(entry, out=entry)
-            else:
-                np.divide(entry, matrix[_packed(j, j)], out=entry)
-    for j in range(p):  # L Y = [b, ψ]
-        if j:
-            np.einsum("km,kcm->cm", row(j, j), rhs[:j], out=dot)
-            np.subtract(rhs[j], dot, out=rhs[j])
-        np.divide(rhs[j], matrix[_packed(j, j)], out=rhs[j])
-    quadratic = np.einsum("ikm,ikm->km", rhs, rhs)  # ‖L⁻¹b‖² = bᵀM⁻¹b, and for ψ
-    solution = rhs[:, 0]
-    for i in range(p - 1, -1, -1):  # Lᵀ u = y, for b only, row by row of L
-        np.divide(solution[i], matrix[_packed(i, i)], out=solution[i])
-        if i:
-            np.multiply(row(i, i), solution[i], out=scratch[:i])
-            np.subtract(solution[:i], scratch[:i], out=solution[:i])
-    return np.asarray(quadratic)
+        return getattr(estimator_replay, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
 __all__: Sequence[str] = [
