@@ -15,6 +15,7 @@ reading and alert event:
 
 from __future__ import annotations
 
+import math
 import threading
 import time
 from collections.abc import Callable, Mapping, Sequence
@@ -101,7 +102,20 @@ class TimeseriesOutput:
 
 
 def _ns(seconds: float) -> int:
-    return round(seconds * 1e9)
+    """Epoch seconds as integer nanoseconds, rounded to the microsecond.
+
+    `seconds * 1e9` would be rounded to a double near 1.8e18, whose spacing is 256 ns, so
+    an exact 12:00:00.125 could become ...124999936 ns and the database, which cuts to
+    milliseconds, would store .124. A double epoch time carries only ~0.24 µs anyway, so
+    the fraction is rounded to whole microseconds: a time written as a decimal millisecond
+    ("…613.123") then lands exactly on that millisecond.
+
+    >>> _ns(1_796_081_613.125), _ns(1_796_081_613.123)
+    (1796081613125000000, 1796081613123000000)
+    """
+    whole = math.floor(seconds)
+    micros = round((seconds - whole) * 1e6)  # the subtraction is exact
+    return whole * 1_000_000_000 + micros * 1000
 
 
 class StatusBoard:
