@@ -156,7 +156,8 @@ class StatusBoard:
     # --- StatusSource -------------------------------------------------------------------
 
     def health(self) -> dict[str, Any]:
-        return {"status": "alive", "uptime_s": round(time.time() - self._started, 3)}
+        # No "status" key: the HTTP layer says {"status": "ok"} and a key here would override it.
+        return {"uptime_s": round(time.time() - self._started, 3)}
 
     def readiness(self) -> tuple[bool, dict[str, Any]]:
         ready = self._ready()
