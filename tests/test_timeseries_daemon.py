@@ -22,6 +22,7 @@ import json
 import os
 import re
 import subprocess
+import sys
 import threading
 import time
 import urllib.request
@@ -661,3 +662,46 @@ class TestSpoolFull:
             f"{int(after['zeroline_tsdb_spool_dropped'])} in all, "
             f"{written} written after recovery, {len(samples)} readings stored"
         )
+
+
+class TestToken:
+    def test_token_env_names_the_variable(
+        self, broker: Mosquitto, victoria: VictoriaMetrics, tmp_path: Path, daemons: list[Daemon]
+    ) -> None:
+        """`timeseries.token_env`: an unset variable stops the start with one line (exit 2);
+        a set one is used and never logged (VictoriaMetrics ignores the token, so the check
+        that it is sent belongs to the InfluxDB unit tests)."""
+        config = write_config(tmp_path, broker, victoria.url)
+        text = config.read_text().replace(
+            "  bucket: sensors\n", "  bucket: sensors\n  token_env: ZL_TEST_TSDB_TOKEN\n"
+        )
+        config.write_text(text)
+        environment = {k: v for k, v in os.environ.items() if k != "ZL_TEST_TSDB_TOKEN"}
+        environment["PYTHONPATH"] = str(Path(__file__).resolve().parent.parent / "daemon")
+        result = subprocess.run(
+            [sys.executable, "-m", "zeroline.cli", "run", "-c", str(config)],
+            capture_output=True,
+            text=True,
+            timeout=60,
+            env=environment,
+        )
+        assert result.returncode == 2, result.stderr
+        assert "Traceback" not in result.stderr
+        [line] = [x for x in result.stderr.splitlines() if x.startswith("zeroline: error:")]
+        assert "ZL_TEST_TSDB_TOKEN" in line and "not set" in line, line
+        daemon = Daemon(config)
+        daemons.append(daemon)
+        daemon.start(env={"ZL_TEST_TSDB_TOKEN": "s3cret-tsdb-token"})
+        subscriber = subscribe(broker, "zeroline/+/corrected")
+        rows = readings(5, seed=51, start=recent_start(1.0), step=1.0)
+        publish_lines(broker, "site/a/gas", [json.dumps(row) for row in rows])
+        assert subscriber.wait_count("/a-gas/corrected", 5, 20)
+        stored = wait_for_export(
+            victoria,
+            '{__name__="zeroline_reading_raw"}',
+            lambda found: sample_count(found, "zeroline_reading_raw", "a-gas") >= 5,
+            timeout=20,
+        )
+        assert sample_count(stored, "zeroline_reading_raw", "a-gas") == 5
+        assert daemon.terminate() == 0
+        assert "s3cret" not in daemon.log.read_text()

@@ -38,12 +38,14 @@ def timeseries_config(config: Config) -> tsdb.TimeseriesConfig | None:
     if section is None:
         return None
     token_file = section.get("token_file")
+    token_env = section.get("token_env")
     return tsdb.TimeseriesConfig(
         url=str(section["url"]),
         org=str(section["org"]),
         bucket=str(section["bucket"]),
         spool_dir=Path(str(section["spool_dir"])),
         token_file=Path(str(token_file)) if token_file else None,
+        token_env=str(token_env) if token_env else None,
         spool_max_bytes=int(section["spool_max_bytes"]),
         batch_size=int(section["batch_size"]),
         flush_interval_s=float(section["flush_every"]),
