@@ -15,6 +15,7 @@ reading and alert event:
 
 from __future__ import annotations
 
+import math
 import threading
 import time
 from collections.abc import Callable, Mapping, Sequence
@@ -37,12 +38,14 @@ def timeseries_config(config: Config) -> tsdb.TimeseriesConfig | None:
     if section is None:
         return None
     token_file = section.get("token_file")
+    token_env = section.get("token_env")
     return tsdb.TimeseriesConfig(
         url=str(section["url"]),
         org=str(section["org"]),
         bucket=str(section["bucket"]),
         spool_dir=Path(str(section["spool_dir"])),
         token_file=Path(str(token_file)) if token_file else None,
+        token_env=str(token_env) if token_env else None,
         spool_max_bytes=int(section["spool_max_bytes"]),
         batch_size=int(section["batch_size"]),
         flush_interval_s=float(section["flush_every"]),
@@ -101,7 +104,20 @@ class TimeseriesOutput:
 
 
 def _ns(seconds: float) -> int:
-    return round(seconds * 1e9)
+    """Epoch seconds as integer nanoseconds, rounded to the microsecond.
+
+    `seconds * 1e9` would be rounded to a double near 1.8e18, whose spacing is 256 ns, so
+    an exact 12:00:00.125 could become ...124999936 ns and the database, which cuts to
+    milliseconds, would store .124. A double epoch time carries only ~0.24 µs anyway, so
+    the fraction is rounded to whole microseconds: a time written as a decimal millisecond
+    ("…613.123") then lands exactly on that millisecond.
+
+    >>> _ns(1_796_081_613.125), _ns(1_796_081_613.123)
+    (1796081613125000000, 1796081613123000000)
+    """
+    whole = math.floor(seconds)
+    micros = round((seconds - whole) * 1e6)  # the subtraction is exact
+    return whole * 1_000_000_000 + micros * 1000
 
 
 class StatusBoard:
@@ -142,7 +158,8 @@ class StatusBoard:
     # --- StatusSource -------------------------------------------------------------------
 
     def health(self) -> dict[str, Any]:
-        return {"status": "alive", "uptime_s": round(time.time() - self._started, 3)}
+        # No "status" key: the HTTP layer says {"status": "ok"} and a key here would override it.
+        return {"uptime_s": round(time.time() - self._started, 3)}
 
     def readiness(self) -> tuple[bool, dict[str, Any]]:
         ready = self._ready()

@@ -317,6 +317,7 @@ class TimeseriesConfig:
     bucket: str
     spool_dir: Path
     token_file: Path | None = None
+    token_env: str | None = None  # a variable the user named; unset is then an error
     spool_max_bytes: int = 256 * 1024 * 1024
     batch_size: int = 5000
     flush_interval_s: float = 1.0
@@ -352,7 +353,8 @@ class TimeseriesConfig:
 
 
 def load_token(config: TimeseriesConfig) -> str | None:
-    """The API token: from `token_file` if set, else $ZEROLINE_TSDB_TOKEN, else None."""
+    """The API token: from `token_file` if set, else from the variable `token_env` (which
+    must then be set), else $ZEROLINE_TSDB_TOKEN, else None."""
     if config.token_file is not None:
         try:
             token = Path(config.token_file).read_text(encoding="utf-8").strip()
@@ -364,6 +366,14 @@ def load_token(config: TimeseriesConfig) -> str | None:
         if not token:
             raise ConfigError(
                 f"timeseries.token_file: {config.token_file} is empty; put the API token in it"
+            )
+        return token
+    if config.token_env is not None:
+        token = os.environ.get(config.token_env, "").strip()
+        if not token:
+            raise ConfigError(
+                f"timeseries.token_env: the environment variable {config.token_env} is not "
+                "set or empty; set it to the API token, or remove token_env"
             )
         return token
     token = os.environ.get(TOKEN_ENV, "").strip()

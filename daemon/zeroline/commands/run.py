@@ -12,6 +12,7 @@ import argparse
 import logging
 import signal
 import threading
+from collections.abc import Callable
 from typing import Any
 
 from zeroline.config import Config, ConfigProblemsError, load_config
@@ -45,13 +46,14 @@ def run(args: argparse.Namespace) -> int:
     store = StateStore(str(config.state["dir"]))
     broker = PahoBroker(settings)
     service = Service(config, broker, store)
+    timeseries = _timeseries(config, service)
     board = StatusBoard(
         channels=lambda: dict(service.table.channels),
         counters=service.counters.as_dict,
         ready=broker.connected.is_set,
+        extra=_sink_gauges(timeseries),
     )
     service.sinks.append(board)
-    timeseries = _timeseries(config, service)
     if timeseries is not None:
         service.sinks.append(timeseries)
     http = _http(config, board)
@@ -88,6 +90,15 @@ def _timeseries(config: Config, service: Service) -> TimeseriesOutput | None:
     sink = TimeseriesSink(settings)
     _log.info("time-series output to %s (spool %s)", settings.url, settings.spool_dir)
     return TimeseriesOutput(sink, str(config.broker["client_id"]), service.counters.as_dict)
+
+
+def _sink_gauges(timeseries: TimeseriesOutput | None) -> Callable[[], dict[str, float]]:
+    """The time-series sink's counters (spool bytes, drops, failed writes) for /metrics,
+    as `zeroline_tsdb_*`: without them a full spool would be visible only in the log."""
+    if timeseries is None:
+        return dict
+    sink = timeseries.sink
+    return lambda: {f"tsdb_{name}": float(value) for name, value in sink.stats().items()}
 
 
 def _http(config: Config, board: StatusBoard) -> StatusServer | None:
