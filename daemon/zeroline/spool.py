@@ -251,7 +251,9 @@ class Spool:
             if self._sizes[number] >= self.segment_bytes:
                 os.close(fd)
                 self._write_fd = None
-        self._enforce_bound_locked()
+            # after every segment written, not once per flush: a large flush must not
+            # take the spool past its bound while it is being written
+            self._enforce_bound_locked()
 
     def _undo_failed_write(self, fd: int, number: int, pending: list[str]) -> None:
         """Cut a half-written flush off the segment and keep its lines for the next try."""
