@@ -10,7 +10,9 @@ from __future__ import annotations
 import os
 import shutil
 import sys
+from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -41,3 +43,15 @@ def require_executable(program: str, package: str) -> str:
     require_service(program, path is not None, f"install the Debian package '{package}'")
     assert path is not None
     return path
+
+
+@pytest.fixture
+def victoria(tmp_path: Path) -> Iterator[Any]:
+    """A VictoriaMetrics on a free 127.0.0.1 port with its own storage, stopped afterwards."""
+    from support.victoria import VictoriaMetrics
+
+    binary = require_executable("victoria-metrics", "victoria-metrics")
+    server = VictoriaMetrics(binary, tmp_path / "vm-data")
+    server.start()
+    yield server
+    server.stop()

@@ -8,12 +8,10 @@ import re
 import time
 import urllib.parse
 import urllib.request
-from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 
-from conftest import require_executable
 from support.victoria import VictoriaMetrics
 from zeroline import tsdb
 
@@ -30,15 +28,6 @@ def promql_queries() -> list[str]:
         if row.startswith("| ") and "`" in row
         for q in re.findall(r"`([^`]+)`", row)
     ]
-
-
-@pytest.fixture
-def victoria(tmp_path: Path) -> Iterator[VictoriaMetrics]:
-    binary = require_executable("victoria-metrics", "victoria-metrics")
-    server = VictoriaMetrics(binary, tmp_path / "vm-data")
-    server.start()
-    yield server
-    server.stop()
 
 
 def _query(server: VictoriaMetrics, promql: str, at: float) -> list[dict[str, object]]:

@@ -65,16 +65,6 @@ def broker(mosquitto_bin: str) -> Iterator[Mosquitto]:
 
 
 @pytest.fixture()
-def victoria(tmp_path: Path) -> Iterator[VictoriaMetrics]:
-    """A VictoriaMetrics on a free 127.0.0.1 port with its own storage, stopped afterwards."""
-    binary = require_executable("victoria-metrics", "victoria-metrics")
-    server = VictoriaMetrics(binary, tmp_path / "vm-data")
-    server.start()
-    yield server
-    server.stop()
-
-
-@pytest.fixture()
 def daemons() -> Iterator[list[Daemon]]:
     """Every daemon a test starts; the ones still alive are SIGKILLed at the end."""
     started: list[Daemon] = []

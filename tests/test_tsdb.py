@@ -10,7 +10,6 @@ import logging
 import math
 import threading
 import time
-from collections.abc import Iterator
 from dataclasses import replace
 from pathlib import Path
 
@@ -19,7 +18,6 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from influxdb_client.client.write.point import Point as ReferencePoint
 
-from conftest import require_executable
 from support.victoria import Series, VictoriaMetrics, free_port
 from zeroline.errors import ConfigError, InputError
 from zeroline.tsdb import (
@@ -476,16 +474,6 @@ class TestSinkBehaviour:
 
 
 # -- the real database ---------------------------------------------------------------------
-
-
-@pytest.fixture
-def victoria(tmp_path: Path) -> Iterator[VictoriaMetrics]:
-    """A VictoriaMetrics on a free 127.0.0.1 port with its own storage, stopped afterwards."""
-    binary = require_executable("victoria-metrics", "victoria-metrics")
-    server = VictoriaMetrics(binary, tmp_path / "vm-data")
-    server.start()
-    yield server
-    server.stop()
 
 
 class RecordingWriter:

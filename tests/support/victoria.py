@@ -114,11 +114,22 @@ class VictoriaMetrics:
             result.append(Series(name, labels, [(int(t), float(v)) for t, v in samples]))
         return sorted(result, key=lambda series: (series.name, sorted(series.labels.items())))
 
-    def export_after_flush(self, match: str, settle_s: float = 1.0) -> list[Series]:
-        """force_flush, wait for the search index to catch up, then export."""
-        self.force_flush()
-        time.sleep(settle_s)
-        return self.export(match)
+    def export_after_flush(
+        self, match: str, settle_s: float = 1.0, timeout_s: float = 20.0
+    ) -> list[Series]:
+        """force_flush and export until two exports `settle_s` apart agree and are not empty:
+        on a loaded machine the search index can take several seconds to show every series."""
+        deadline = time.monotonic() + timeout_s
+        previous: list[Series] | None = None
+        while True:
+            self.force_flush()
+            time.sleep(settle_s)
+            current = self.export(match)
+            if current and current == previous:
+                return current
+            if time.monotonic() > deadline:
+                return current
+            previous = current
 
     def log_tail(self, chars: int = 2000) -> str:
         try:
