@@ -35,11 +35,11 @@ from support.broker import Mosquitto, free_port, wait_until  # noqa: E402
 
 __all__ = [
     "BASIS_P6",
+    "ROOT",
     "Counter",
     "Daemon",
     "Mosquitto",
     "Publisher",
-    "ROOT",
     "free_port",
     "machine",
     "payload",

@@ -72,9 +72,9 @@ def main() -> int:
 
     from statsmodels.regression.recursive_ls import RecursiveLS
 
-    X = regressors(times, temperature)
+    design = regressors(times, temperature)
     began = time.perf_counter()
-    fit = RecursiveLS(value, X).filter()
+    fit = RecursiveLS(value, design).filter()
     statsmodels_s = time.perf_counter() - began
     assert np.all(np.isfinite(fit.params))
     zl_rate, sm_rate = args.rows / zeroline_s, args.rows / statsmodels_s

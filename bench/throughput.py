@@ -16,7 +16,8 @@ topic root and fresh site names so no round sees another's messages or sessions:
 
 `in/s` is readings over the time to the last PUBACK, `out/s` readings over the time from
 the first publish to the last output; loss is readings minus distinct outputs.
-`--profile DIR` runs the daemon rounds under `py-spy record` (flame graphs in DIR).
+`--profile DIR` runs the daemon rounds under `py-spy record -f raw` (collapsed stacks in DIR,
+one line per stack and its sample count: `flamegraph.pl` draws them).
 """
 
 from __future__ import annotations
@@ -24,6 +25,7 @@ from __future__ import annotations
 import argparse
 import json
 import statistics
+import subprocess
 import sys
 import time
 from pathlib import Path
@@ -69,8 +71,6 @@ def relay_main(port: int, root: str) -> None:
 
 class Relay:
     def __init__(self, port: int, root: str) -> None:
-        import subprocess
-
         self.process = subprocess.Popen(
             [sys.executable, __file__, "--relay", str(port), root],
             stdout=subprocess.PIPE,
@@ -89,6 +89,7 @@ def run_round(
     broker: Mosquitto, side: str, index: int, args: argparse.Namespace
 ) -> dict[str, float]:
     root = f"site{index}"
+    spy: subprocess.Popen[bytes] | None = None
     sites = [f"r{index}s{j}" for j in range(args.channels)]
     if side == "relay":
         out_filter = f"relay-{root}/+/out"
@@ -100,12 +101,14 @@ def run_round(
             directory, broker.port, topic=f"{root}/+/gas", client_id=f"zl-bench-{index}"
         )
         process = Daemon(config)
-        extra: list[str] = []
+        process.start()
         if args.profile:
             Path(args.profile).mkdir(parents=True, exist_ok=True)
-            extra = ["py-spy", "record", "-r", "50", "-o",
-                     f"{args.profile}/daemon-round{index}.svg", "--"]
-        process.start(extra)
+            spy = subprocess.Popen(
+                ["py-spy", "record", "-r", "100", "-f", "raw", "--pid", str(process.pid),
+                 "-o", f"{args.profile}/daemon-round{index}.txt"],
+                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+            )
     counter = Counter(broker.port, out_filter)
     publisher = Publisher(broker.port)
     start = time.time() - 86400.0 * 2
@@ -130,6 +133,8 @@ def run_round(
         publisher.stop()
         counter.stop()
         process.stop()
+        if spy is not None:
+            spy.wait(60)
     distinct = len(counter.keys) - len(sites)
     return {
         "in": total / (acked_at - began),
