@@ -44,8 +44,9 @@ def measure(port: int, side: str, index: int, args: argparse.Namespace) -> dict[
     else:
         out_filter, suffix = "zeroline/+/corrected", "-gas"
         directory = temporary_directory("zl-bench-lat-")
-        process = Daemon(write_config(directory, port, topic=f"{root}/+/gas",
-                                      client_id=f"zl-lat-{index}"))
+        process = Daemon(
+            write_config(directory, port, topic=f"{root}/+/gas", client_id=f"zl-lat-{index}")
+        )
         process.start()
     counter = Counter(port, out_filter)
     publisher = Publisher(port)
@@ -101,13 +102,24 @@ def main() -> int:
     try:
         for index, side in enumerate(("relay", "zeroline"), start=1):
             r = measure(broker.port, side, index, args)
-            rows.append([side, f"{r['rate']:,.0f}", f"{r['p50']:.2f}", f"{r['p90']:.2f}",
-                         f"{r['p99']:.2f}", f"{r['max']:.1f}", f"{r['lost']:.0f}"])
+            rows.append(
+                [
+                    side,
+                    f"{r['rate']:,.0f}",
+                    f"{r['p50']:.2f}",
+                    f"{r['p90']:.2f}",
+                    f"{r['p99']:.2f}",
+                    f"{r['max']:.1f}",
+                    f"{r['lost']:.0f}",
+                ]
+            )
             print(f"{side}: {r}", flush=True)
     finally:
         broker.cleanup()
-    print(f"\n{args.channels} channels at p = 6, {args.rate:.0f} readings/s for "
-          f"{args.seconds:.0f} s, QoS 1, publish -> output (ms; first {SKIP_S:.0f} s left out)")
+    print(
+        f"\n{args.channels} channels at p = 6, {args.rate:.0f} readings/s for "
+        f"{args.seconds:.0f} s, QoS 1, publish -> output (ms; first {SKIP_S:.0f} s left out)"
+    )
     print(table(["side", "achieved/s", "p50 ms", "p90 ms", "p99 ms", "max ms", "lost"], rows))
     print("target: zeroline p99 <= 5 ms")
     print(machine())

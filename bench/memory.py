@@ -67,14 +67,20 @@ def main() -> int:
         daemon.stop()
         broker.cleanup()
     per_channel = (loaded - idle) * 1024 / args.channels
-    print(f"\nVmRSS of the daemon, {args.channels} channels at p = 6, {args.readings} readings "
-          f"each (warm-up took {warm_s:.1f} s)")
-    print(table(
-        ["state", "VmRSS MiB", "target"],
-        [["idle, 0 channels", f"{idle / 1024:.1f}", ""],
-         [f"{args.channels} channels", f"{loaded / 1024:.1f}", "<= 80 MB total"],
-         ["per channel", f"{per_channel:,.0f} bytes", "<= 1 KB (1,024 bytes)"]],
-    ))
+    print(
+        f"\nVmRSS of the daemon, {args.channels} channels at p = 6, {args.readings} readings "
+        f"each (warm-up took {warm_s:.1f} s)"
+    )
+    print(
+        table(
+            ["state", "VmRSS MiB", "target"],
+            [
+                ["idle, 0 channels", f"{idle / 1024:.1f}", ""],
+                [f"{args.channels} channels", f"{loaded / 1024:.1f}", "<= 80 MB total"],
+                ["per channel", f"{per_channel:,.0f} bytes", "<= 1 KB (1,024 bytes)"],
+            ],
+        )
+    )
     print(machine())
     return 0
 

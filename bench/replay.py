@@ -32,8 +32,13 @@ def make_rows(n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     times = start + 60.0 * np.arange(n)
     days = (times - start) / 86400.0
     temperature = 20.0 + 6.0 * np.sin(2 * np.pi * days) + rng.normal(0.0, 0.5, n)
-    value = (1.5 + 0.01 * days + 0.2 * np.sin(2 * np.pi * days + 0.3)
-             + 0.03 * (temperature - 20.0) + rng.normal(0.0, 0.05, n))
+    value = (
+        1.5
+        + 0.01 * days
+        + 0.2 * np.sin(2 * np.pi * days + 0.3)
+        + 0.03 * (temperature - 20.0)
+        + rng.normal(0.0, 0.05, n)
+    )
     return times, value, temperature
 
 
@@ -41,8 +46,9 @@ def regressors(times: np.ndarray, temperature: np.ndarray) -> np.ndarray:
     t = times - times[0]
     scaled = t / (30 * 86400.0)
     angle = 2 * np.pi * t / 86400.0
-    return np.column_stack([np.ones_like(t), scaled, scaled**2, np.sin(angle), np.cos(angle),
-                            temperature - 20.0])
+    return np.column_stack(
+        [np.ones_like(t), scaled, scaled**2, np.sin(angle), np.cos(angle), temperature - 20.0]
+    )
 
 
 def main() -> int:
@@ -61,10 +67,23 @@ def main() -> int:
     env = {**os.environ, "PYTHONPATH": str(ROOT / "daemon")}
     began = time.perf_counter()
     subprocess.run(
-        [sys.executable, "-m", "zeroline.cli", "replay", str(data), "-c", str(config),
-         "--channel", "x-gas", "-o", str(directory / "out.csv"), "--alerts",
-         str(directory / "alerts.jsonl")],
-        check=True, env=env,
+        [
+            sys.executable,
+            "-m",
+            "zeroline.cli",
+            "replay",
+            str(data),
+            "-c",
+            str(config),
+            "--channel",
+            "x-gas",
+            "-o",
+            str(directory / "out.csv"),
+            "--alerts",
+            str(directory / "alerts.jsonl"),
+        ],
+        check=True,
+        env=env,
     )
     zeroline_s = time.perf_counter() - began
     with open(directory / "out.csv") as handle:
@@ -79,11 +98,19 @@ def main() -> int:
     assert np.all(np.isfinite(fit.params))
     zl_rate, sm_rate = args.rows / zeroline_s, args.rows / statsmodels_s
     print(f"\n{args.rows:,} rows, one channel at p = 6 ({written:,} rows written)")
-    print(table(
-        ["path", "seconds", "samples/s"],
-        [["zeroline replay (CLI, CSV in and out)", f"{zeroline_s:.1f}", f"{zl_rate:,.0f}"],
-         ["statsmodels RecursiveLS(y, X).filter()", f"{statsmodels_s:.1f}", f"{sm_rate:,.0f}"]],
-    ))
+    print(
+        table(
+            ["path", "seconds", "samples/s"],
+            [
+                ["zeroline replay (CLI, CSV in and out)", f"{zeroline_s:.1f}", f"{zl_rate:,.0f}"],
+                [
+                    "statsmodels RecursiveLS(y, X).filter()",
+                    f"{statsmodels_s:.1f}",
+                    f"{sm_rate:,.0f}",
+                ],
+            ],
+        )
+    )
     print(f"zeroline / statsmodels: {zl_rate / sm_rate:.2f}x")
     print(machine())
     return 0

@@ -53,14 +53,16 @@ def main() -> int:
     for i in range(WARM_READINGS):
         for j, channel in enumerate(channels.values()):
             data = json.loads(payload(start + 60.0 * i, i + j))
-            channel.process(Sample(data["time"], data["value"], {"temperature":
-                                                                 data["temperature"]}))
+            channel.process(
+                Sample(data["time"], data["value"], {"temperature": data["temperature"]})
+            )
     store = StateStore(directory / "state")
 
     def write() -> int:
         texts = {
-            name: json.dumps({"template": template.name, "wildcards": [name[:-4]],
-                              "state": channel.to_state()})
+            name: json.dumps(
+                {"template": template.name, "wildcards": [name[:-4]], "state": channel.to_state()}
+            )
             for name, channel in channels.items()
         }
         return store.save_snapshot(texts, {"journal_seq": 0, "saved_at": time.time()})
@@ -85,16 +87,30 @@ def main() -> int:
     new_s, _ = timed(lambda: [Channel(template, n) for n, _ in entries], args.repeats)
     file_load_s, _ = timed(store.load_snapshot, args.repeats)
     rows = [
-        ["write (to_state + dumps + save_snapshot)", f"{write_s * 1e3:.0f}",
-         f"{dumps_s * 1e3:.0f}", f"{write_s / dumps_s:.1f}", "<= 200 ms"],
-        ["restore (load_snapshot + Channel + load_state)", f"{restore_s * 1e3:.0f}",
-         f"{loads_s * 1e3:.0f}", f"{restore_s / loads_s:.1f}", "<= 200 ms"],
+        [
+            "write (to_state + dumps + save_snapshot)",
+            f"{write_s * 1e3:.0f}",
+            f"{dumps_s * 1e3:.0f}",
+            f"{write_s / dumps_s:.1f}",
+            "<= 200 ms",
+        ],
+        [
+            "restore (load_snapshot + Channel + load_state)",
+            f"{restore_s * 1e3:.0f}",
+            f"{loads_s * 1e3:.0f}",
+            f"{restore_s / loads_s:.1f}",
+            "<= 200 ms",
+        ],
     ]
-    print(f"\n{args.channels} channels at p = 6, snapshot {int(size):,} bytes "
-          f"({int(size) / args.channels:,.0f} per channel), median of {args.repeats}")
+    print(
+        f"\n{args.channels} channels at p = 6, snapshot {int(size):,} bytes "
+        f"({int(size) / args.channels:,.0f} per channel), median of {args.repeats}"
+    )
     print(table(["step", "zeroline ms", "json baseline ms", "ratio", "target"], rows))
-    print(f"parts: to_state of all {to_state_s * 1e3:.0f} ms; load_snapshot (read + json + "
-          f"checks) {file_load_s * 1e3:.0f} ms; Channel() of all {new_s * 1e3:.0f} ms")
+    print(
+        f"parts: to_state of all {to_state_s * 1e3:.0f} ms; load_snapshot (read + json + "
+        f"checks) {file_load_s * 1e3:.0f} ms; Channel() of all {new_s * 1e3:.0f} ms"
+    )
     print(machine())
     return 0
 

@@ -52,10 +52,12 @@ class Watcher:
         self.stats: dict[str, Any] = {}
         self.alerts = 0
         self._lock = threading.Lock()
-        self.client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id="zl-soak-watch",
-                                  clean_session=False)
+        self.client = mqtt.Client(
+            mqtt.CallbackAPIVersion.VERSION2, client_id="zl-soak-watch", clean_session=False
+        )
         self.client.on_connect = lambda c, *a: c.subscribe(
-            [("zeroline/stats", 1), ("zeroline/+/alert", 1)])
+            [("zeroline/stats", 1), ("zeroline/+/alert", 1)]
+        )
         self.client.on_message = self._on_message
         self.client.reconnect_delay_set(0.1, 1)
         self.client.connect("127.0.0.1", port)
@@ -84,8 +86,7 @@ def main() -> int:
     print(machine())
     broker = start_broker(persistent=True)
     directory = temporary_directory("zl-bench-soak-")
-    daemon = Daemon(write_config(directory, broker.port, client_id="zl-soak",
-                                 snapshot_every="30s"))
+    daemon = Daemon(write_config(directory, broker.port, client_id="zl-soak", snapshot_every="30s"))
     daemon.start()
     counter = Counter(broker.port, "zeroline/+/corrected", client_id="zl-soak-count")
     watcher = Watcher(broker.port)
@@ -100,11 +101,22 @@ def main() -> int:
         stats = dict(watcher.stats)
         distinct = len(counter.keys)
         errors = sum(v for k, v in stats.items() if k.startswith("errors") and "." not in k)
-        row = [f"{elapsed:.0f}", f"{rss_kib(daemon.pid) / 1024:.1f}", published,
-               publisher.acked, distinct, published - distinct, counter.count - distinct,
-               stats.get("received", "-"), stats.get("processed", "-"),
-               stats.get("skipped_not_newer", 0), errors, stats.get("queue", "-"),
-               watcher.alerts, restarts]
+        row = [
+            f"{elapsed:.0f}",
+            f"{rss_kib(daemon.pid) / 1024:.1f}",
+            published,
+            publisher.acked,
+            distinct,
+            published - distinct,
+            counter.count - distinct,
+            stats.get("received", "-"),
+            stats.get("processed", "-"),
+            stats.get("skipped_not_newer", 0),
+            errors,
+            stats.get("queue", "-"),
+            watcher.alerts,
+            restarts,
+        ]
         rows.append(row)
         print(" ".join(str(c) for c in row), flush=True)
 
@@ -138,11 +150,31 @@ def main() -> int:
         code = daemon.stop()
         broker.cleanup()
     lost = published - len(counter.keys)
-    print(f"\nsoak: {args.minutes:g} min at {args.rate:.0f} readings/s over {args.channels} "
-          f"channels, broker restarted every {args.restart_every:.0f} s; daemon exit {code}")
-    print(table(["s", "RSS MiB", "published", "acked", "outputs", "backlog", "dup outputs",
-                 "received", "processed", "skipped", "errors", "queue", "alerts",
-                 "restarts"], rows))
+    print(
+        f"\nsoak: {args.minutes:g} min at {args.rate:.0f} readings/s over {args.channels} "
+        f"channels, broker restarted every {args.restart_every:.0f} s; daemon exit {code}"
+    )
+    print(
+        table(
+            [
+                "s",
+                "RSS MiB",
+                "published",
+                "acked",
+                "outputs",
+                "backlog",
+                "dup outputs",
+                "received",
+                "processed",
+                "skipped",
+                "errors",
+                "queue",
+                "alerts",
+                "restarts",
+            ],
+            rows,
+        )
+    )
     print(f"RSS at start {rss_start / 1024:.1f} MiB; readings never corrected: {lost}")
     print(machine())
     return 0

@@ -105,9 +105,20 @@ def run_round(
         if args.profile:
             Path(args.profile).mkdir(parents=True, exist_ok=True)
             spy = subprocess.Popen(
-                ["py-spy", "record", "-r", "100", "-f", "raw", "--pid", str(process.pid),
-                 "-o", f"{args.profile}/daemon-round{index}.txt"],
-                stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                [
+                    "py-spy",
+                    "record",
+                    "-r",
+                    "100",
+                    "-f",
+                    "raw",
+                    "--pid",
+                    str(process.pid),
+                    "-o",
+                    f"{args.profile}/daemon-round{index}.txt",
+                ],
+                stdout=subprocess.DEVNULL,
+                stderr=subprocess.DEVNULL,
             )
     counter = Counter(broker.port, out_filter)
     publisher = Publisher(broker.port)
@@ -165,25 +176,35 @@ def main() -> int:
                 index += 1
                 result = run_round(broker, side, index, args)
                 results[side].append(result)
-                print(f"round {index} {side}: " + ", ".join(
-                    f"{k}={v:.0f}" for k, v in result.items()), flush=True)
+                print(
+                    f"round {index} {side}: "
+                    + ", ".join(f"{k}={v:.0f}" for k, v in result.items()),
+                    flush=True,
+                )
     finally:
         broker.cleanup()
     rows = []
     for side, runs in results.items():
-        rows.append([
-            side,
-            " / ".join(f"{r['in']:,.0f}" for r in runs),
-            " / ".join(f"{r['out']:,.0f}" for r in runs),
-            " / ".join(f"{r['lost']:.0f}" for r in runs),
-        ])
-    ratios = [z["out"] / r["out"] for r, z in zip(results["relay"], results["zeroline"],
-                                                    strict=True)]
-    print(f"\n{args.channels} channels at p = 6, {args.per_channel} readings each per round, "
-          f"QoS 1, {args.rounds} interleaved rounds")
+        rows.append(
+            [
+                side,
+                " / ".join(f"{r['in']:,.0f}" for r in runs),
+                " / ".join(f"{r['out']:,.0f}" for r in runs),
+                " / ".join(f"{r['lost']:.0f}" for r in runs),
+            ]
+        )
+    ratios = [
+        z["out"] / r["out"] for r, z in zip(results["relay"], results["zeroline"], strict=True)
+    ]
+    print(
+        f"\n{args.channels} channels at p = 6, {args.per_channel} readings each per round, "
+        f"QoS 1, {args.rounds} interleaved rounds"
+    )
     print(table(["side", "in/s per round", "out/s per round", "lost per round"], rows))
-    print(f"zeroline / relay out/s per round: {', '.join(f'{x:.2f}' for x in ratios)} "
-          f"(median {statistics.median(ratios):.2f}; target >= 1.0 with zero loss)")
+    print(
+        f"zeroline / relay out/s per round: {', '.join(f'{x:.2f}' for x in ratios)} "
+        f"(median {statistics.median(ratios):.2f}; target >= 1.0 with zero loss)"
+    )
     print(machine())
     return 0
 
