@@ -13,7 +13,8 @@ seconds the broker is stopped and started again on the same port.
 Every `report_every` seconds one row: daemon VmRSS, readings published and acknowledged,
 distinct corrected outputs, backlog (published - distinct outputs), duplicate outputs
 (at-least-once after restarts), the daemon's own counters from `zeroline/stats`
-(received, processed, skipped as not newer, errors, queue) and alert messages so far. At
+(received, processed, skipped as not newer, errors, queue) and distinct alert messages
+so far (retained alerts come again after each resubscription: counted once). At
 the end, after a drain of up to 60 s, the readings never corrected are the loss.
 """
 
@@ -46,11 +47,11 @@ DRAIN_S = 60.0
 
 
 class Watcher:
-    """Latest retained `zeroline/stats` and a count of alert messages (persistent session)."""
+    """Latest retained `zeroline/stats` and the distinct alert messages (persistent session)."""
 
     def __init__(self, port: int) -> None:
         self.stats: dict[str, Any] = {}
-        self.alerts = 0
+        self.alert_messages: set[tuple[str, bytes]] = set()
         self._lock = threading.Lock()
         self.client = mqtt.Client(
             mqtt.CallbackAPIVersion.VERSION2, client_id="zl-soak-watch", clean_session=False
@@ -67,8 +68,13 @@ class Watcher:
         with self._lock:
             if message.topic == "zeroline/stats":
                 self.stats = json.loads(message.payload)
-            elif message.payload:
-                self.alerts += 1
+            elif message.payload:  # distinct: a resubscription resends the retained ones
+                self.alert_messages.add((message.topic, message.payload))
+
+    @property
+    def alerts(self) -> int:
+        with self._lock:
+            return len(self.alert_messages)
 
     def stop(self) -> None:
         self.client.loop_stop()
@@ -126,8 +132,9 @@ def main() -> int:
         next_restart, next_report = args.restart_every, args.report_every
         while (elapsed := time.perf_counter() - began) < duration:
             due = began + published / args.rate
-            if due > time.perf_counter():
-                time.sleep(due - time.perf_counter())
+            delay = due - time.perf_counter()
+            if delay > 0:
+                time.sleep(delay)
             j = published % len(sites)
             t = start + 60.0 * (published // len(sites))
             publisher.publish(f"site/{sites[j]}/gas", payload(t, published))
