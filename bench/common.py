@@ -26,12 +26,14 @@ from pathlib import Path
 from typing import Any
 
 import paho.mqtt.client as mqtt
+from paho.mqtt.enums import CallbackAPIVersion
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "tests"))
 sys.path.insert(0, str(ROOT / "daemon"))
 
-from support.broker import Mosquitto, free_port, wait_until  # noqa: E402
+# tests/support has no py.typed marker: its helpers are typed but not a package for mypy
+from support.broker import Mosquitto, free_port, wait_until  # type: ignore[import-untyped]  # noqa: E402
 
 __all__ = [
     "BASIS_P6",
@@ -159,7 +161,7 @@ class Counter:
         self._subscribed = threading.Event()
         persistent = client_id is not None
         self.client = mqtt.Client(
-            mqtt.CallbackAPIVersion.VERSION2,
+            CallbackAPIVersion.VERSION2,
             client_id=client_id or "",
             clean_session=not persistent,
         )
@@ -168,7 +170,7 @@ class Counter:
         self.client.on_connect = self._on_connect
         self.client.on_subscribe = lambda *a: self._subscribed.set()
         self.client.on_message = self._on_message
-        self.client.reconnect_delay_set(0.1, 1)
+        self.client.reconnect_delay_set(1, 2)
         self.client.connect("127.0.0.1", port)
         self.client.loop_start()
         if not self._subscribed.wait(10):
@@ -200,11 +202,11 @@ class Publisher:
 
     def __init__(self, port: int, *, client_id: str = "", inflight: int = 1000) -> None:
         self.client = mqtt.Client(
-            mqtt.CallbackAPIVersion.VERSION2, client_id=client_id, clean_session=not client_id
+            CallbackAPIVersion.VERSION2, client_id=client_id, clean_session=not client_id
         )
         self.client.max_inflight_messages_set(inflight)
         self.client.max_queued_messages_set(0)
-        self.client.reconnect_delay_set(0.1, 1)
+        self.client.reconnect_delay_set(1, 2)
         self.acked = 0
         self.client.on_publish = self._on_publish
         connected = threading.Event()
@@ -221,7 +223,7 @@ class Publisher:
         self.client.publish(topic, data, qos=1)
 
     def wait_acked(self, count: int, timeout: float) -> bool:
-        return wait_until(lambda: self.acked >= count, timeout, 0.005)
+        return bool(wait_until(lambda: self.acked >= count, timeout, 0.005))
 
     def stop(self) -> None:
         self.client.loop_stop()

@@ -75,9 +75,10 @@ def main() -> int:
         return len(document["channels"])
 
     states = [channel.to_state() for channel in channels.values()]
-    write_s, size = timed(write, args.repeats)
+    write_s, written = timed(write, args.repeats)
+    size = int(str(written))
     restore_s, restored = timed(restore, args.repeats)
-    assert restored == args.channels
+    assert restored == args.channels, restored
     to_state_s, _ = timed(lambda: [c.to_state() for c in channels.values()], args.repeats)
     dumps_s, text = timed(lambda: json.dumps(states), args.repeats)
     loads_s, _ = timed(lambda: json.loads(str(text)), args.repeats)
@@ -103,8 +104,8 @@ def main() -> int:
         ],
     ]
     print(
-        f"\n{args.channels} channels at p = 6, snapshot {int(size):,} bytes "
-        f"({int(size) / args.channels:,.0f} per channel), median of {args.repeats}"
+        f"\n{args.channels} channels at p = 6, snapshot {size:,} bytes "
+        f"({size / args.channels:,.0f} per channel), median of {args.repeats}"
     )
     print(table(["step", "zeroline ms", "json baseline ms", "ratio", "target"], rows))
     print(

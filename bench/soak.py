@@ -28,6 +28,7 @@ import time
 from typing import Any
 
 import paho.mqtt.client as mqtt
+from paho.mqtt.enums import CallbackAPIVersion
 
 from common import (
     Counter,
@@ -54,13 +55,13 @@ class Watcher:
         self.alert_messages: set[tuple[str, bytes]] = set()
         self._lock = threading.Lock()
         self.client = mqtt.Client(
-            mqtt.CallbackAPIVersion.VERSION2, client_id="zl-soak-watch", clean_session=False
+            CallbackAPIVersion.VERSION2, client_id="zl-soak-watch", clean_session=False
         )
         self.client.on_connect = lambda c, *a: c.subscribe(
             [("zeroline/stats", 1), ("zeroline/+/alert", 1)]
         )
         self.client.on_message = self._on_message
-        self.client.reconnect_delay_set(0.1, 1)
+        self.client.reconnect_delay_set(1, 2)
         self.client.connect("127.0.0.1", port)
         self.client.loop_start()
 
@@ -69,7 +70,7 @@ class Watcher:
             if message.topic == "zeroline/stats":
                 self.stats = json.loads(message.payload)
             elif message.payload:  # distinct: a resubscription resends the retained ones
-                self.alert_messages.add((message.topic, message.payload))
+                self.alert_messages.add((message.topic, bytes(message.payload)))
 
     @property
     def alerts(self) -> int:

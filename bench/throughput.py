@@ -51,8 +51,9 @@ DRAIN_TIMEOUT_S = 120.0
 def relay_main(port: int, root: str) -> None:
     """The naive relay: no model, paho's defaults, decode and re-encode every reading."""
     import paho.mqtt.client as mqtt
+    from paho.mqtt.enums import CallbackAPIVersion
 
-    client = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2)
+    client = mqtt.Client(CallbackAPIVersion.VERSION2)
 
     def on_connect(c: mqtt.Client, *args: Any) -> None:
         c.subscribe(f"{root}/+/gas", qos=1)
