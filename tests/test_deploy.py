@@ -10,12 +10,10 @@ between our files, so a rename in one place that was forgotten in another fails 
 from __future__ import annotations
 
 import re
-import shutil
 import subprocess
 from pathlib import Path
 
-import pytest
-
+from conftest import require_executable
 from zeroline import cli
 from zeroline.config import Config, load_config
 
@@ -136,10 +134,7 @@ def _verifiable_copy(tmp_path: Path, text: str) -> Path:
 
 
 def _systemd_analyze() -> str:
-    path = shutil.which("systemd-analyze")
-    if path is None:
-        pytest.skip("systemd-analyze is not installed (Debian package 'systemd')")
-    return path
+    return require_executable("systemd-analyze", "systemd")
 
 
 def test_systemd_analyze_verify_accepts_the_unit(tmp_path: Path) -> None:
