@@ -55,3 +55,22 @@ def victoria(tmp_path: Path) -> Iterator[Any]:
     server.start()
     yield server
     server.stop()
+
+
+@pytest.fixture()
+def mosquitto_bin() -> str:
+    """The mosquitto broker binary; the clients must be there too (tests use them)."""
+    require_executable("mosquitto_pub", "mosquitto-clients")
+    require_executable("mosquitto_sub", "mosquitto-clients")
+    return require_executable("mosquitto", "mosquitto")
+
+
+@pytest.fixture()
+def broker(mosquitto_bin: str) -> Iterator[Any]:
+    """A Mosquitto of the tests' own on a free 127.0.0.1 port, stopped afterwards."""
+    from support.broker import Mosquitto
+
+    server = Mosquitto(mosquitto_bin)
+    server.start()
+    yield server
+    server.cleanup()

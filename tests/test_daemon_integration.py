@@ -23,7 +23,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from conftest import ROOT, require_executable
+from conftest import ROOT
 from support.broker import Mosquitto, Subscriber, publish_lines, publish_one, wait_until
 from zeroline.channel import Channel
 from zeroline.config import load_config
@@ -36,21 +36,6 @@ BASIS = (
     "[constant, {polynomial: {of: t, degree: 1, scale: 1d}}, "
     "{polynomial: {of: temp, degree: 1, center: 20}}]"
 )
-
-
-@pytest.fixture()
-def mosquitto_bin() -> str:
-    require_executable("mosquitto_pub", "mosquitto-clients")
-    require_executable("mosquitto_sub", "mosquitto-clients")
-    return require_executable("mosquitto", "mosquitto")
-
-
-@pytest.fixture()
-def broker(mosquitto_bin: str) -> Iterator[Mosquitto]:
-    server = Mosquitto(mosquitto_bin)
-    server.start()
-    yield server
-    server.cleanup()
 
 
 @pytest.fixture()

@@ -17,7 +17,6 @@ import os
 import socket
 import subprocess
 import sys
-from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -30,7 +29,6 @@ from test_daemon_integration import Daemon
 from test_timeseries_daemon import (
     daemons,  # noqa: F401  (fixture)
     http_get,
-    mosquitto_bin,  # noqa: F401  (fixture)
     outputs,
     readings,
     recent_start,
@@ -44,14 +42,6 @@ pytestmark = pytest.mark.service
 
 TOLERANCE = 1e-9
 HISTORY = 120  # recent samples kept per channel (zeroline.status.HISTORY_LENGTH)
-
-
-@pytest.fixture()
-def broker(mosquitto_bin: str) -> Iterator[Mosquitto]:  # noqa: F811  (the imported fixture)
-    server = Mosquitto(mosquitto_bin)
-    server.start()
-    yield server
-    server.cleanup()
 
 
 @pytest.fixture()

@@ -33,7 +33,6 @@ from typing import Any
 import numpy as np
 import pytest
 
-from conftest import require_executable
 from support.broker import Mosquitto, Subscriber, publish_lines, wait_until
 from support.victoria import Series, VictoriaMetrics
 from test_daemon_integration import Daemon
@@ -47,21 +46,6 @@ STATUS_PAGE = re.compile(r"status page on (http://127\.0\.0\.1:\d+)")
 
 
 # -- the stack: broker, database, daemon --------------------------------------------------
-
-
-@pytest.fixture()
-def mosquitto_bin() -> str:
-    require_executable("mosquitto_pub", "mosquitto-clients")
-    require_executable("mosquitto_sub", "mosquitto-clients")
-    return require_executable("mosquitto", "mosquitto")
-
-
-@pytest.fixture()
-def broker(mosquitto_bin: str) -> Iterator[Mosquitto]:
-    server = Mosquitto(mosquitto_bin)
-    server.start()
-    yield server
-    server.cleanup()
 
 
 @pytest.fixture()
