@@ -144,7 +144,10 @@ class StatusBoard:
     def corrected(self, channel: Channel, result: Corrected) -> None:
         with self._lock:
             self._last[channel.name] = result
-            self._history.setdefault(channel.name, History()).add(result)
+            history = self._history.get(channel.name)
+            if history is None:  # not setdefault: that would build a History every call
+                history = self._history[channel.name] = History()
+            history.add(result)
 
     def alert(self, channel: Channel, event: AlertEvent) -> None:
         """Alert state is read from the channel itself (`alerts.active()`)."""

@@ -19,7 +19,7 @@ from zeroline.config import Config, ConfigProblemsError, load_config
 from zeroline.errors import UserError
 from zeroline.http_status import StatusServer, start_http_server
 from zeroline.logs import setup_logging
-from zeroline.mqtt import BrokerSettings, PahoBroker
+from zeroline.mqtt import BrokerSettings, SocketBroker
 from zeroline.outputs import StatusBoard, TimeseriesOutput, timeseries_config
 from zeroline.service import Service
 from zeroline.state import StateStore
@@ -44,7 +44,7 @@ def run(args: argparse.Namespace) -> int:
         config.broker, config.output_prefix, int(config.limits["queue"])
     )
     store = StateStore(str(config.state["dir"]))
-    broker = PahoBroker(settings)
+    broker = SocketBroker(settings)
     service = Service(config, broker, store)
     timeseries = _timeseries(config, service)
     board = StatusBoard(
