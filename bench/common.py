@@ -42,6 +42,7 @@ __all__ = [
     "Daemon",
     "Mosquitto",
     "Publisher",
+    "cpu_seconds",
     "free_port",
     "machine",
     "payload",
@@ -236,6 +237,12 @@ def rss_kib(pid: int) -> int:
         if line.startswith("VmRSS:"):
             return int(line.split()[1])
     raise RuntimeError(f"no VmRSS for {pid}")
+
+
+def cpu_seconds(pid: int) -> float:
+    """User + system CPU time of a process so far (from /proc/PID/stat), seconds."""
+    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
 
 
 def machine() -> str:

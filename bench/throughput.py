@@ -36,6 +36,7 @@ from common import (
     Daemon,
     Mosquitto,
     Publisher,
+    cpu_seconds,
     machine,
     payload,
     start_broker,
@@ -80,6 +81,10 @@ class Relay:
         assert self.process.stdout is not None
         self.process.stdout.readline()
         time.sleep(0.3)  # let the SUBSCRIBE land
+
+    @property
+    def pid(self) -> int:
+        return self.process.pid
 
     def stop(self) -> None:
         self.process.terminate()
@@ -131,6 +136,8 @@ def run_round(
             raise RuntimeError(f"{side}: warm-up got {counter.count} of {len(sites)} outputs")
         warm = counter.count
         total = args.channels * args.per_channel
+        pid = process.pid
+        cpu_began = cpu_seconds(pid)
         began = time.perf_counter()
         for i in range(1, args.per_channel + 1):
             t = start + 60.0 * i
@@ -139,6 +146,7 @@ def run_round(
         publisher.wait_acked(len(sites) + total, DRAIN_TIMEOUT_S)
         acked_at = time.perf_counter()
         wait_until(lambda: counter.count >= warm + total, DRAIN_TIMEOUT_S, 0.005)
+        cpu_used = cpu_seconds(pid) - cpu_began
         time.sleep(0.5)  # any late duplicates or extras
         done = counter.last_arrival
     finally:
@@ -154,6 +162,7 @@ def run_round(
         "lost": total - distinct,
         "extra": counter.count - warm - total - 0,
         "seconds": done - began,
+        "cpu_us": 1e6 * cpu_used / total,
     }
 
 
@@ -192,6 +201,7 @@ def main() -> int:
                 " / ".join(f"{r['in']:,.0f}" for r in runs),
                 " / ".join(f"{r['out']:,.0f}" for r in runs),
                 " / ".join(f"{r['lost']:.0f}" for r in runs),
+                " / ".join(f"{r['cpu_us']:.0f}" for r in runs),
             ]
         )
     ratios = [
@@ -201,7 +211,8 @@ def main() -> int:
         f"\n{args.channels} channels at p = 6, {args.per_channel} readings each per round, "
         f"QoS 1, {args.rounds} interleaved rounds"
     )
-    print(table(["side", "in/s per round", "out/s per round", "lost per round"], rows))
+    headers = ["side", "in/s per round", "out/s per round", "lost per round", "CPU µs/reading"]
+    print(table(headers, rows))
     print(
         f"zeroline / relay out/s per round: {', '.join(f'{x:.2f}' for x in ratios)} "
         f"(median {statistics.median(ratios):.2f}; target >= 1.0 with zero loss)"

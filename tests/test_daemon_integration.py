@@ -48,6 +48,9 @@ def persistent_broker(mosquitto_bin: str) -> Iterator[Mosquitto]:
     server.cleanup()
 
 
+BROKER_SAVE_S = 0.5  # Mosquitto saves a change on its next loop turn, after the PUBACK
+
+
 def rows(n: int = N_ROWS, seed: int = 11) -> list[dict[str, float]]:
     """Invented demo data: slow drift + temperature effect + noise, one reading a minute."""
     rng = np.random.default_rng(seed)
@@ -237,8 +240,14 @@ class TestRestarts:
     def test_broker_killed_mid_stream(
         self, persistent_broker: Mosquitto, tmp_path: Path, daemon_factory: Any
     ) -> None:
-        """SIGKILL of the broker mid-stream: the daemon reconnects by itself; every reading is
-        corrected, each to the replay's value (identical copies only from QoS 1 resends)."""
+        """SIGKILL of the broker right after a burst: the daemon reconnects by itself; every
+        reading is corrected, each to the replay's value (identical copies only from QoS 1
+        resends and redeliveries whose acknowledgement the broker lost).
+
+        Mosquitto acknowledges a QoS 1 publish before it writes it to disk (even with a save
+        per change), so a reading killed with the broker in the same instant is lost by the
+        broker itself, whoever the subscriber: the kill waits BROKER_SAVE_S after the burst
+        (see deploy/mosquitto-notes.md, "Broker crash")."""
         broker = persistent_broker
         config = write_config(tmp_path, broker)
         daemon = daemon_factory(config)
@@ -248,7 +257,8 @@ class TestRestarts:
         data = rows()
         publish_lines(broker, "site/a/gas", payload_lines(data[:150]))
         assert before.wait_count("/a-gas/corrected", 60, 20)
-        broker.kill()  # mid-stream: the daemon has a backlog in flight
+        time.sleep(BROKER_SAVE_S)
+        broker.kill()
         killed = time.monotonic()
         before.stop()
         broker.start()
@@ -264,7 +274,18 @@ class TestRestarts:
                 merged.setdefault(key, []).extend(copies)
             return merged
 
-        assert wait_until(lambda: len(seen()) >= len(data), 30), len(seen())
+        def missing() -> str:
+            times = sorted(seen())
+            gone = [i for i, row in enumerate(data) if row["time"] not in times]
+            log = daemon.new_log()[-3000:]
+            early = sorted(corrected_by_time(before, "a-gas"))
+            late = sorted(corrected_by_time(after, "a-gas"))
+            index = {row["time"]: i for i, row in enumerate(data)}
+            log += f"\nlast rows before the kill {[index[t] for t in early][-5:]}"
+            log += f", first after it {[index[t] for t in late][:8]}"
+            return f"{len(times)} of {len(data)} seen; missing rows {gone}; daemon log:\n{log}"
+
+        assert wait_until(lambda: len(seen()) >= len(data), 30), missing()
         assert daemon.alive()
         assert daemon.terminate() == 0
         assert_matches_replay(seen(), replay_reference(config, data, "a-gas"))
@@ -370,7 +391,11 @@ class TestBadInput:
         assert [e["reason"] for e in errors] == expected_reasons
         for error in errors:
             assert error["detail"] and error["topic"] and len(error["payload"]) <= 200
-        assert len(subscriber.messages("/a-gas/corrected")) == good
+        # the duplicate of the last reading gets its output again (a broker that lost it in
+        # a crash would redeliver the reading): identical bytes, not a new correction
+        outputs = [p for _, p in subscriber.messages("/a-gas/corrected")]
+        assert len(outputs) == good + 1
+        assert outputs[-1] == outputs[-2]
         assert daemon.alive()
         assert daemon.terminate() == 0
         assert '"errors": 17' in daemon.new_log()

@@ -61,12 +61,12 @@ class TestRoutes:
         [match] = routes.match("site/north/met/temp")
         assert isinstance(match, InputMatch)
         assert (match.template, match.input_name) == ("{1}-{2}-no2", "temp")
-        assert routes.match("site/north/met/temp/extra") == []
+        assert routes.match("site/north/met/temp/extra") == ()
 
     def test_control_and_unknown_topics(self, routes: Routes) -> None:
         """<prefix>/<channel>/control is a control match; anything else matches nothing."""
-        assert routes.match("zeroline/ph/control") == [ControlMatch("ph")]
-        assert routes.match("lab/other") == []
+        assert routes.match("zeroline/ph/control") == (ControlMatch("ph"),)
+        assert routes.match("lab/other") == ()
 
     def test_subscriptions_cover_readings_inputs_and_control(self, routes: Routes) -> None:
         """Placeholder levels of input templates are subscribed as `+`."""
@@ -88,7 +88,7 @@ channels:
 """)
         routes = Routes(config)
         assert len(routes.match("m/a/a")) == 1
-        assert routes.match("m/a/b") == []
+        assert routes.match("m/a/b") == ()
 
 
 class TestChannelTable:
@@ -137,3 +137,18 @@ class TestChannelTable:
         channel = table.create("{1}-{2}-no2", ("n", "1"))
         assert channel is not None
         assert channel.to_state()["inputs"]["temp"] == [200.0, 26.0]
+
+
+def test_remembered_matches_are_the_same_and_bounded() -> None:
+    """A topic is matched once; a flood of distinct topics cannot grow the memory."""
+    config = parse_config(
+        "broker: {host: h}\nlimits: {max_channels: 3}\n"
+        "channels: [{name: '{1}', topic: 'm/+', basis: [constant]}]\n"
+    )
+    routes = Routes(config)
+    first = routes.match("m/a")
+    assert routes.match("m/a") is first
+    for index in range(100):
+        routes.match(f"m/x{index}")
+        assert len(routes._matched) <= 2 * 3
+    assert routes.match("m/a") == first  # forgotten and matched again: the same answer

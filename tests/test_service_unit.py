@@ -175,13 +175,19 @@ class TestDelivery:
         service.stop()
 
     def test_duplicate_and_out_of_order_are_skipped_and_reported(self, state_dir: Path) -> None:
-        """A reading not newer than the last one is not applied, counted and reported."""
+        """A reading not newer than the last one is not applied, counted and reported; a
+        repeat of the last one gets its output again, byte for byte (a broker that lost it
+        in a crash redelivers the reading)."""
         broker = FakeBroker()
         service = start(parse_config(config_text(state_dir)), broker, state_dir)
         for t in (T0, T0 + 60, T0 + 60, T0 + 30, T0 + 120):
             broker.deliver("site/a/gas", reading_payload(t, 1.0))
         assert service.wait_idle(5)
-        assert [c["time"] for c in broker.on("a-gas/corrected")] == [T0, T0 + 60, T0 + 120]
+        times = [c["time"] for c in broker.on("a-gas/corrected")]
+        assert times == [T0, T0 + 60, T0 + 60, T0 + 120]
+        outputs = [p for topic, p, _ in broker.published if topic.endswith("a-gas/corrected")]
+        assert outputs[1] == outputs[2]
+        assert service.counters.get("republished") == 1
         errors = broker.on("zeroline/error")
         assert [e["reason"] for e in errors] == ["not_newer", "not_newer"]
         assert service.counters.get("skipped_not_newer") == 2

@@ -50,6 +50,7 @@ _log = logging.getLogger(__name__)
 
 PLACEHOLDER = re.compile(r"\{(\d+)\}")
 INPUTS_PER_CHANNEL_BOUND = 4  # latest input values kept: this many per allowed channel
+MATCHES_REMEMBERED_PER_CHANNEL = 2  # topics whose matches are remembered, per allowed channel
 
 
 def fill(template: str, wildcards: tuple[str, ...]) -> str:
@@ -156,10 +157,18 @@ class _InputRoute:
 
 
 class Routes:
-    """What each topic means under one config; immutable, safe to share between threads."""
+    """What each topic means under one config; safe to share between threads.
+
+    The answer for a topic never changes under one config, so `match` remembers it: a
+    reading's topic is matched against every pattern once, not on every message. The memory
+    is bounded (cleared when full) and written only by the one thread that decodes; a dict
+    lookup or store is atomic in CPython, so readers on other threads need no lock.
+    """
 
     def __init__(self, config: Config, limits: DecodeLimits | None = None) -> None:
         self.config = config
+        self._matched: dict[str, tuple[Match, ...]] = {}
+        self._matched_bound = MATCHES_REMEMBERED_PER_CHANNEL * int(config.limits["max_channels"])
         self.prefix = config.output_prefix
         limits = limits or DecodeLimits(max_bytes=int(config.limits["max_payload_bytes"]))
         self.limits = limits
@@ -199,8 +208,18 @@ class Routes:
         topics.add(self.control.text)
         return topics
 
-    def match(self, topic: str) -> list[Match]:
+    def match(self, topic: str) -> tuple[Match, ...]:
         """Everything `topic` is, in config order; empty for a topic no route knows."""
+        known = self._matched.get(topic)
+        if known is not None:
+            return known
+        matches = tuple(self._match(topic))
+        if len(self._matched) >= self._matched_bound:
+            self._matched.clear()  # a flood of odd topics must not grow this without end
+        self._matched[topic] = matches
+        return matches
+
+    def _match(self, topic: str) -> list[Match]:
         matches: list[Match] = []
         for route in self._readings:
             wildcards = route.pattern.match(topic)

@@ -83,6 +83,7 @@ from zeroline.errors import InputError
 from zeroline.intake import ControlPart, ErrorPart, InputPart, Part, ReadingPart, Work, decode
 from zeroline.logs import RateLimitedLogger
 from zeroline.mqtt import BrokerLink, Message
+from zeroline.output_json import corrected_payload
 from zeroline.router import ChannelTable, Routes, fill
 from zeroline.state import StateStore
 
@@ -96,6 +97,7 @@ ERROR_PAYLOAD_CHARS = 200
 TICK_S = 0.02
 COMMIT_WAIT_S = 0.001
 AWAITING_PER_QUEUE = 4  # processed-but-uncommitted messages allowed, per queue slot
+BATCH_MESSAGES = 64  # messages handled between two commit checks when the queue is busy
 
 
 class OutputSink(Protocol):
@@ -113,23 +115,44 @@ class OutputSink(Protocol):
 
 
 class Counters:
-    """Thread-safe named counts (received, processed, errors.<reason>, …)."""
+    """Named counts (received, processed, errors.<reason>, …) added to by several threads.
+
+    Adding is on the per-message path of two threads, so it takes no lock: each thread adds
+    to a dict of its own, and reading sums them. Only its owner writes a dict; CPython
+    copies a dict in one step with respect to other Python threads, so a reader never sees
+    one half-changed.
+    """
 
     def __init__(self) -> None:
-        self._lock = threading.Lock()
-        self._counts: dict[str, int] = {}
+        self._local = threading.local()
+        self._lock = threading.Lock()  # only for registering a thread's dict
+        self._per_thread: list[dict[str, int]] = []
+
+    def _mine(self) -> dict[str, int]:
+        counts: dict[str, int] | None = getattr(self._local, "counts", None)
+        if counts is None:
+            counts = self._local.counts = {}
+            with self._lock:
+                self._per_thread.append(counts)
+        return counts
 
     def add(self, key: str, amount: int = 1) -> None:
-        with self._lock:
-            self._counts[key] = self._counts.get(key, 0) + amount
+        counts = self._mine()
+        counts[key] = counts.get(key, 0) + amount
 
     def get(self, key: str) -> int:
         with self._lock:
-            return self._counts.get(key, 0)
+            dicts = list(self._per_thread)
+        return sum(counts.get(key, 0) for counts in dicts)
 
     def as_dict(self) -> dict[str, int]:
         with self._lock:
-            return dict(sorted(self._counts.items()))
+            dicts = list(self._per_thread)
+        total: dict[str, int] = {}
+        for counts in dicts:
+            for key, value in dict(counts).items():
+                total[key] = total.get(key, 0) + value
+        return dict(sorted(total.items()))
 
 
 @dataclass
@@ -169,6 +192,7 @@ class Service:
         self._journal_seq = 0
         self._journal_since_snapshot = 0
         self._dirty: set[str] = set()
+        self._last_output: dict[str, tuple[float, str, bytes]] = {}  # see _publish_last_again
         self._state_text: dict[str, str] = {}
         self._last_snapshot = time.monotonic()
         self._last_stats = 0.0
@@ -265,6 +289,16 @@ class Service:
             work = self._queue.get(timeout=TICK_S)
         except queue.Empty:
             work = None
+        # What has queued up meanwhile is taken in one go: one commit check per batch
+        # instead of per message.
+        for _ in range(BATCH_MESSAGES):
+            if work is None:
+                break
+            self._handle(work)
+            try:
+                work = self._queue.get_nowait()
+            except queue.Empty:
+                work = None
         if work is not None:
             self._handle(work)
         self._commit(force=False)
@@ -337,6 +371,8 @@ class Service:
                 continue
             if reading.time <= channel.last_time:
                 self.counters.add("skipped_not_newer")
+                if reading.time == channel.last_time:
+                    self._publish_last_again(channel.name, reading.time)
                 self._error(
                     message,
                     "not_newer",
@@ -356,11 +392,31 @@ class Service:
         assert reading.value is not None
         result, events = channel.process(Sample(reading.time, reading.value, reading.fields))
         self.counters.add("processed" if self._live else "replayed")
-        self._publish(f"{self.prefix}/{channel.name}/corrected", result.to_json())
+        if self._live:
+            topic = f"{self.prefix}/{channel.name}/corrected"
+            body = corrected_payload(result)
+            self._last_output[channel.name] = (result.time, topic, body)
+            self._last_seq = self.broker.publish(topic, body)
+            self.counters.add("published")
         if self._live:
             for sink in self.sinks:
                 sink.corrected(channel, result)
         self._publish_alerts(channel, events)
+
+    def _publish_last_again(self, name: str, time_: float) -> None:
+        """A redelivery of a channel's last reading: publish its output again, same bytes.
+
+        Why: a broker killed (SIGKILL, power cut) can lose outputs it had acknowledged but
+        not yet written to disk (Mosquitto saves periodically). Their readings' own
+        acknowledgements came later still, so those readings are redelivered after its
+        restart; the model must not apply them twice, but their outputs may be gone. The
+        last reading of a channel is the one most at risk, and its output is remembered.
+        Consumers de-duplicate on (channel, time) as for any QoS 1 resend.
+        """
+        last = self._last_output.get(name)
+        if self._live and last is not None and last[0] == time_:
+            self._last_seq = self.broker.publish(last[1], last[2])
+            self.counters.add("republished")
 
     def _apply_control(self, part: ControlPart, message: Message | None) -> dict[str, Any] | None:
         channel = self.table.get(part.channel)
