@@ -194,20 +194,48 @@ def unsubscribe(packet_id: int, topics: list[str], *, v5: bool) -> bytes:
     return _frame(0xA2, body)
 
 
-@dataclass(frozen=True)
 class Packet:
-    """One decoded packet from the broker; fields not used by its kind are left empty."""
+    """One decoded packet from the broker; fields not used by its kind are left empty.
 
-    kind: int
-    flags: int = 0
-    packet_id: int = 0
-    topic: str = ""
-    payload: bytes = b""
-    reason: int = 0
-    session_present: bool = False
-    codes: bytes = b""
-    properties: bytes = b""
-    raw_topic: bytes = b""
+    A plain class with slots, not a frozen dataclass: one is made per message received,
+    and a frozen dataclass's __init__ costs several times more."""
+
+    __slots__ = (
+        "codes",
+        "flags",
+        "kind",
+        "packet_id",
+        "payload",
+        "properties",
+        "reason",
+        "session_present",
+        "topic",
+    )
+
+    def __init__(
+        self,
+        kind: int,
+        flags: int = 0,
+        packet_id: int = 0,
+        topic: str = "",
+        payload: bytes = b"",
+        reason: int = 0,
+        session_present: bool = False,
+        codes: bytes = b"",
+        properties: bytes = b"",
+    ) -> None:
+        self.kind = kind
+        self.flags = flags
+        self.packet_id = packet_id
+        self.topic = topic
+        self.payload = payload
+        self.reason = reason
+        self.session_present = session_present
+        self.codes = codes
+        self.properties = properties
+
+    def __repr__(self) -> str:
+        return f"Packet(kind={self.kind}, packet_id={self.packet_id}, topic={self.topic!r})"
 
 
 class PacketReader:
@@ -223,9 +251,13 @@ class PacketReader:
         packets: list[Packet] = []
         start, end = 0, len(buffer)
         while end - start >= 2:
-            length, header = _remaining_length(buffer, start + 1, end)
-            if length < 0:
-                break  # the length itself is not complete yet
+            length = buffer[start + 1]
+            if length < 128:  # the common case, inline: a packet under 128 bytes
+                header = 1
+            else:
+                length, header = _remaining_length(buffer, start + 1, end)
+                if length < 0:
+                    break  # the length itself is not complete yet
             if length > self.max_packet:
                 raise ProtocolError(f"packet of {length} bytes exceeds {self.max_packet}")
             body_start = start + 1 + header
@@ -281,7 +313,7 @@ class PacketReader:
             topic = raw_topic.decode()
         except UnicodeDecodeError:
             topic = raw_topic.decode("utf-8", "replace")
-        return Packet(PUBLISH, flags, packet_id, topic, body[position:], raw_topic=raw_topic)
+        return Packet(PUBLISH, flags, packet_id, topic, body[position:])
 
     def _acknowledgement(self, kind: int, body: bytes) -> Packet:
         (packet_id,) = struct.unpack_from("!H", body)

@@ -1,10 +1,12 @@
 """The daemon: a bounded queue between the network thread and one worker that runs channels.
 
-Threads. paho's network thread calls `Service._on_message`, which only decodes
-(`zeroline.intake`) and enqueues. One worker thread takes `Work` items in arrival order,
-feeds the channels (exactly as `zeroline.replay` does: inputs first, then the reading, so a
-daemon and a replay of the same rows agree to the last bit), publishes the outputs through
-the broker seam, and commits. Signals are the main thread's (`zeroline.commands.run`).
+Threads. The broker link's input thread calls `Service._on_message`, which only decodes
+(`zeroline.intake`) and enqueues. One worker thread takes `Work` items in arrival order
+(what has queued up, in batches), feeds the channels (exactly as `zeroline.replay` does:
+inputs first, then the reading, so a daemon and a replay of the same rows agree to the last
+bit), publishes the outputs through the broker seam, and hands what is ready to the
+committer thread (`zeroline.committer`), which journals, fsyncs and acknowledges, so the
+worker never waits for the disk. Signals are the main thread's (`zeroline.commands.run`).
 
 No loss, no double counting. A QoS 1 message is acknowledged to the broker only when its
 effect is safe, in this order:
@@ -44,7 +46,8 @@ blocked handing over a message, and it is the one that reads the broker's
 acknowledgements), so the two cannot deadlock.
 
 Commits are batched: when `broker.inflight // 2` messages are ready, when the oldest has
-waited `COMMIT_DELAY_S`, or when the queue is empty (one fsync per batch). A snapshot needs
+waited `COMMIT_DELAY_S`, or when the queue is empty and the oldest has waited
+`IDLE_COMMIT_S` (one fsync per batch, on the committer thread). A snapshot needs
 a quiet moment (no processed-but-uncommitted message, so snapshot and journal agree): when
 one is due the worker stops taking new work until the outputs in transit are confirmed, at
 most `QUIESCE_TIMEOUT_S`, and tries again later if the broker is away.
@@ -78,6 +81,7 @@ from typing import Any, Protocol
 from zeroline.alerts import AlertEvent
 from zeroline.channel import Channel, ControlEvent, Corrected, Sample
 from zeroline.codecs import Reading
+from zeroline.committer import Batch, Committer
 from zeroline.config import Config
 from zeroline.errors import InputError
 from zeroline.intake import ControlPart, ErrorPart, InputPart, Part, ReadingPart, Work, decode
@@ -90,6 +94,7 @@ from zeroline.state import StateStore
 _log = logging.getLogger(__name__)
 
 COMMIT_DELAY_S = 0.1  # longest a processed message waits for its journal fsync
+IDLE_COMMIT_S = 0.005  # a quiet queue commits what waited this long (fsyncs stay batched)
 QUIESCE_TIMEOUT_S = 2.0  # longest the worker pauses for a snapshot before trying later
 JOURNAL_SNAPSHOT_RECORDS = 10_000  # replaying more at start-up would take over ~4 s
 STATS_EVERY_S = 1.0
@@ -166,7 +171,7 @@ class _Pending:
 
 
 class Service:
-    """The daemon's core, independent of paho and of signals (see the module docstring)."""
+    """The daemon's core, independent of MQTT clients and of signals (see the module docstring)."""
 
     def __init__(
         self,
@@ -186,6 +191,11 @@ class Service:
         self.snapshot_every = float(config.state["snapshot_every"])
         self._queue: queue.Queue[Work] = queue.Queue(maxsize=int(config.limits["queue"]))
         self._awaiting: deque[_Pending] = deque()
+        self._committer = Committer(
+            lambda records: self.store.append_journal(records),
+            lambda token: self.broker.ack(token),
+            self.counters.add,
+        )
         self._commit_batch = max(1, int(config.broker["inflight"]) // 2)
         self._live = False  # False while replaying the journal: no outputs then
         self._last_seq = 0
@@ -211,6 +221,7 @@ class Service:
     def start(self) -> None:
         """Restore the state, start the worker, connect (BrokerError if refused)."""
         self.restore()
+        self._committer.start()
         self._live = True
         self._worker = threading.Thread(target=self._run, name="zeroline-worker", daemon=True)
         self._worker.start()
@@ -222,6 +233,7 @@ class Service:
         self._stop.set()
         if self._worker is not None:
             self._worker.join(timeout)
+        self._committer.stop(timeout)
         self._closed.set()  # releases a network thread waiting on a full queue
         self.broker.close()
         for sink in self.sinks:
@@ -275,7 +287,8 @@ class Service:
             self.failed.set()
 
     def _step(self) -> None:
-        backlog = len(self._awaiting) >= AWAITING_PER_QUEUE * self._queue.maxsize
+        unacknowledged = len(self._awaiting) + self._committer.pending()
+        backlog = unacknowledged >= AWAITING_PER_QUEUE * self._queue.maxsize
         if backlog and not self._queue.full():
             # Too much processed but not yet committed: let the confirmations catch up.
             self._commit(force=True)
@@ -493,12 +506,15 @@ class Service:
         self._last_stats = now
         stats = {**self.counters.as_dict(), "channels": len(self.table.channels)}
         stats["queue"] = self._queue.qsize()
-        stats["awaiting_commit"] = len(self._awaiting)
+        stats["awaiting_commit"] = len(self._awaiting) + self._committer.pending()
         self._publish(f"{self.prefix}/stats", stats, retain=True)
 
     # --- commits and snapshots ------------------------------------------------------------
 
     def _commit(self, *, force: bool) -> None:
+        """Hand what is ready (outputs confirmed) to the committer, in batches: when
+        `commit_batch` messages are ready, the oldest has waited COMMIT_DELAY_S, the
+        queue has run dry for IDLE_COMMIT_S, or `force`."""
         if not self._awaiting:
             return
         confirmed = self.broker.confirmed()
@@ -510,11 +526,10 @@ class Service:
         if not ready:
             return
         waited = time.monotonic() - self._awaiting[0].since
-        if not (
-            force or ready >= self._commit_batch or waited >= COMMIT_DELAY_S or self._queue.empty()
-        ):
+        idle = self._queue.empty() and waited >= IDLE_COMMIT_S
+        if not (force or ready >= self._commit_batch or waited >= COMMIT_DELAY_S or idle):
             return
-        batch = [self._awaiting[i] for i in range(ready)]
+        batch = [self._awaiting.popleft() for _ in range(ready)]
         first = self._journal_seq + 1
         records: list[dict[str, Any]] = []
         for pending in batch:
@@ -523,24 +538,17 @@ class Service:
         try:
             for sink in self.sinks:
                 sink.commit()
-            self.store.append_journal(records)
         except OSError as error:
-            # Disk full or failing: acknowledge nothing, so the broker keeps the messages and
-            # the full queue pushes back; retry on the next step.
-            self.counters.add("journal_errors")
+            # A sink that cannot make its data durable holds the acks, like the journal.
+            self._awaiting.extendleft(reversed(batch))
+            self.counters.add("sink_commit_errors")
             self._backlog_log.warning(
-                "journal", f"cannot write the state journal ({error.strerror}); holding acks"
+                "sink", f"an output cannot make its data durable ({error.strerror}); holding acks"
             )
             return
-        for _ in range(ready):
-            self._awaiting.popleft()
         self._journal_seq += len(records)
         self._journal_since_snapshot += len(records)
-        self.counters.add("journal_records", len(records))
-        for pending in batch:
-            if pending.token is not None:
-                self.broker.ack(pending.token)
-        self.counters.add("acked", len(batch))
+        self._committer.submit(Batch(records, [pending.token for pending in batch]))
 
     def _snapshot_due(self) -> bool:
         if self._journal_since_snapshot >= JOURNAL_SNAPSHOT_RECORDS:
@@ -552,7 +560,7 @@ class Service:
         deadline = time.monotonic() + timeout
         while True:
             self._commit(force=True)
-            if not self._awaiting:
+            if not self._awaiting and self._committer.wait_drained(COMMIT_WAIT_S):
                 return True
             # A full queue may mean the network thread waits on us: never wait back.
             if self._queue.full() or time.monotonic() > deadline:
