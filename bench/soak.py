@@ -77,6 +77,16 @@ class Watcher:
         with self._lock:
             return len(self.alert_messages)
 
+    def alerts_by_rule(self) -> dict[str, int]:
+        """Distinct alert events per "rule state" (what the alert count is made of)."""
+        tally: dict[str, int] = {}
+        with self._lock:
+            for _, payload in self.alert_messages:
+                event = json.loads(payload)
+                key = f"{event.get('rule')} {event.get('state')}"
+                tally[key] = tally.get(key, 0) + 1
+        return dict(sorted(tally.items()))
+
     def stop(self) -> None:
         self.client.loop_stop()
         self.client.disconnect()
@@ -184,6 +194,7 @@ def main() -> int:
         )
     )
     print(f"RSS at start {rss_start / 1024:.1f} MiB; readings never corrected: {lost}")
+    print(f"distinct alert events by rule and state: {watcher.alerts_by_rule()}")
     print(machine())
     return 0
 

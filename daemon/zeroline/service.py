@@ -314,6 +314,10 @@ class Service:
                 work = None
         if work is not None:
             self._handle(work)
+        # Let the link's network threads have the interpreter now: they send what this
+        # batch published. Without it they would wait up to the interpreter's switch
+        # interval (5 ms) for the worker to block, which is latency on every output.
+        time.sleep(0)
         self._commit(force=False)
         self._publish_stats()
 
