@@ -95,40 +95,69 @@ def replay(
     table: Table, channel: Channel, events: list[ControlEvent], counts: ReplayCounts
 ) -> Iterator[Step]:
     """Feed every row of `table` to `channel`; yields one Step per processed row."""
-    times = table.require_complete(TIME_COLUMN, purpose="replay (the time of each row)")
-    values = table.column(VALUE_COLUMN, purpose="replay (the raw reading)")
-    input_columns = _input_columns(table, channel.config)
+    for row, result, alert_events in replay_rows(table, channel, events, counts):
+        yield Step(row, result, alert_events)
+
+
+def replay_rows(
+    table: Table, channel: Channel, events: list[ControlEvent], counts: ReplayCounts
+) -> Iterator[tuple[int, Corrected | None, list[AlertEvent]]]:
+    """`replay` as plain (row, result, events) tuples, for callers that need no Step.
+
+    Columns are turned into lists of Python floats once, so the loop only indexes them;
+    NaN (a blank cell) is the one value not equal to itself.
+    """
+    times = table.require_complete(TIME_COLUMN, purpose="replay (the time of each row)").tolist()
+    values = table.column(VALUE_COLUMN, purpose="replay (the raw reading)").tolist()
+    field_inputs, topic_inputs = _split_inputs(table, channel.config)
     pending = list(events)
+    next_event = pending[0].time if pending else math.inf
     last = -math.inf
-    for row in range(table.rows):
+    process, set_input = channel.process, channel.set_input
+    for row, time in enumerate(times):
         counts.rows += 1
-        time = float(times[row])
-        while pending and pending[0].time <= time:
+        while time >= next_event:
             cleared = channel.control(pending.pop(0))
+            next_event = pending[0].time if pending else math.inf
             counts.alerts += len(cleared)
-            yield Step(row, None, cleared)
+            yield row, None, cleared
         fields: dict[str, float] = {}
-        for name, column in input_columns.items():
-            value = float(column[row])
-            if math.isnan(value):
-                continue
-            spec = channel.config.inputs[name]
-            if spec.field is not None:
-                fields[spec.field] = value
-            else:
-                channel.set_input(name, time, value)
-        raw = float(values[row])
-        if math.isnan(raw):
+        for name, column in topic_inputs:
+            value = column[row]
+            if value == value:  # not blank
+                set_input(name, time, value)
+        for field_name, column in field_inputs:
+            value = column[row]
+            if value == value:
+                fields[field_name] = value
+        raw = values[row]
+        if raw != raw:
             counts.skipped_blank_value += 1
             continue
         if time <= last:
             counts.skipped_not_newer += 1
             continue
         last = time
-        result, alert_events = channel.process(Sample(time, raw, fields))
+        result, alert_events = process(Sample(time, raw, fields))
         counts.processed += 1
-        counts.alerts += len(alert_events)
-        yield Step(row, result, alert_events)
+        if alert_events:
+            counts.alerts += len(alert_events)
+        yield row, result, alert_events
+
+
+def _split_inputs(
+    table: Table, config: ChannelConfig
+) -> tuple[list[tuple[str, list[float]]], list[tuple[str, list[float]]]]:
+    """(payload field, column) of the inputs read from the reading's own payload, and
+    (input name, column) of those that arrive on their own topics, in config order."""
+    field_inputs, topic_inputs = [], []
+    for name, column in _input_columns(table, config).items():
+        spec = config.inputs[name]
+        if spec.field is not None:
+            field_inputs.append((spec.field, column.tolist()))
+        else:
+            topic_inputs.append((name, column.tolist()))
+    return field_inputs, topic_inputs
 
 
 def _input_columns(table: Table, config: ChannelConfig) -> dict[str, Any]:
