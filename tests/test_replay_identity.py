@@ -20,12 +20,15 @@ import json
 import math
 from pathlib import Path
 from types import ModuleType
+from unittest import mock
 
 import numpy as np
 import pytest
 
-from zeroline import cli
+from zeroline import cli, csvdata
+from zeroline import replay as replay_module
 from zeroline.channel import Channel, Sample
+from zeroline.commands import replay as replay_command
 from zeroline.config import load_config
 from zeroline.csvdata import read_table_cell_by_cell
 from zeroline.replay import read_events, resolve_channel
@@ -154,3 +157,18 @@ def test_the_awkward_log_has_what_it_is_meant_to_test() -> None:
     assert {"input_stale", "extrapolating", "learning", "ok"} <= {r.split(",")[5] for r in rows[1:]}
     states = {(e["rule"], e["state"]) for e in map(json.loads, alerts.decode().splitlines())}
     assert ("drift_limit", "raised") in states and ("drift_limit", "cleared") in states
+
+
+@pytest.mark.parametrize("case", ["awkward", "local_gateway_fields"])
+def test_chunk_and_block_sizes_do_not_change_a_byte(case: str, tmp_path: Path) -> None:
+    """Rows taken 7 at a time, the CSV read 5 at a time and written 3 at a time: the same
+    bytes (events, skipped rows and blank cells fall on the chunks' edges)."""
+    with (
+        mock.patch.object(replay_module, "CHUNK_ROWS", 7),
+        mock.patch.object(csvdata, "BLOCK_ROWS", 5),
+        mock.patch.object(replay_command._RowWriter, "BLOCK", 3),
+    ):
+        output, alerts, stderr = _replay(case, tmp_path)
+    assert hashlib.sha256(output).hexdigest() == EXPECTED[case]["output"]
+    assert hashlib.sha256(alerts).hexdigest() == EXPECTED[case]["alerts"]
+    assert stderr == EXPECTED[case]["stderr"]
