@@ -221,3 +221,15 @@ def test_numbers_are_what_python_float_reads(tmp_path: Path) -> None:
     table = read_table(write(tmp_path, "y,x\n1_000,\u0661\u0662\n 0.1 ,1e-7\n"))
     assert table.columns["y"].tolist() == [1000.0, 0.1]
     assert table.columns["x"].tolist() == [12.0, 1e-7]
+
+
+def test_ordinary_logs_take_the_fast_path(tmp_path: Path) -> None:
+    """Blank input cells, blank lines, quoted cells, CRLF and ISO times need no second
+    reading of the file (the cell-by-cell reader is only for problems and line-spanning
+    quotes), so a change that quietly sent every file there would fail here."""
+    text = 'time,y,x\n2026-05-01T00:00:00Z,1,\n\n1777593660,"2",3\n1777593720, 4 ,5\n'
+    path = write(tmp_path, text, newline="\r\n")
+    with mock.patch.object(csvdata, "read_table_cell_by_cell", side_effect=AssertionError):
+        table = read_table(path)
+    assert table.lines.tolist() == [2, 4, 5]
+    np.testing.assert_array_equal(table.columns["y"], [1.0, 2.0, 4.0])
