@@ -15,7 +15,7 @@ channel pipeline, CSV out), then, in the same run:
   before the clock starts): the model's share. CLI minus this is the time around the model.
 - the command in this process with `Channel.process` timed from inside each call: the
   same run split into the model and everything around it (the timer's own cost, measured,
-  is printed; it counts as "around").
+  is printed; it counts as "around"). Its CPU time is split pro rata to the wall times.
 - the same CLI command with a no-op channel (`--no-op-child`: a subprocess whose `Channel`
   returns one fixed result with 17-digit numbers, so writing a row costs what it costs):
   start-up, CSV in, the loop, building samples and input updates, CSV out — the time
@@ -152,10 +152,11 @@ def time_channel_process(config: Path, data: Path) -> tuple[float, float]:
     return time.perf_counter() - began, time.process_time() - cpu_began
 
 
-def time_cli_in_process(arguments: list[str]) -> tuple[float, float, float]:
-    """(wall seconds of the whole command, wall seconds inside `Channel.process`, the
-    timer's own cost a call) of `zeroline replay` run in this process: the same run split
-    into the model and everything around it, not a difference of two runs."""
+def time_cli_in_process(arguments: list[str]) -> tuple[float, float, float, float]:
+    """(wall seconds of the whole command, its CPU seconds, wall seconds inside
+    `Channel.process`, the timer's own cost a call) of `zeroline replay` run in this
+    process: the same run split into the model and everything around it, not a difference
+    of two runs. (A CPU clock read costs ~1 µs here, too much to take twice a row.)"""
     from zeroline import cli
     from zeroline.channel import Channel
 
@@ -190,14 +191,14 @@ def time_cli_in_process(arguments: list[str]) -> tuple[float, float, float]:
     inside = 0
     setattr(Channel, "process", timed)  # noqa: B010 - a plain assignment fails mypy
     try:
-        began_s = time.perf_counter()
+        began_s, began_cpu = time.perf_counter(), time.process_time()
         code = cli.main(arguments)
-        total = time.perf_counter() - began_s
+        total, total_cpu = time.perf_counter() - began_s, time.process_time() - began_cpu
     finally:
         setattr(Channel, "process", original)  # noqa: B010
     if code != 0:
         raise SystemExit(f"in-process replay: exit {code}")
-    return total, inside / 1e9, timer_cost
+    return total, total_cpu, inside / 1e9, timer_cost
 
 
 def main() -> int:
@@ -238,7 +239,11 @@ def main() -> int:
     no_op_s, no_op_cpu = timed_cli([script, NO_OP_FLAG, *replay_arguments(data, "no_op")], env)
     start_s, start_cpu = timed_cli([script, NO_OP_FLAG, *replay_arguments(one_row, "one_row")], env)
     process_s, process_cpu = time_channel_process(config, data)
-    whole_s, model_s, timer_cost = time_cli_in_process(replay_arguments(data, "in_process"))
+    in_process = time_cli_in_process(replay_arguments(data, "in_process"))
+    whole_s, whole_cpu, model_s, timer_cost = in_process
+    # CPU around the model, pro rata: on a busy machine waiting for a core stretches the
+    # wall time inside and outside Channel.process alike
+    around_same_cpu = whole_cpu * (whole_s - model_s) / whole_s
 
     from statsmodels.regression.recursive_ls import RecursiveLS
 
@@ -270,9 +275,11 @@ def main() -> int:
                 line("statsmodels RecursiveLS(y, X).filter()", statsmodels_s, None),
                 line("Channel.process alone, same rows", process_s, process_cpu),
                 line("around the model: CLI − Channel.process", around_s, around_cpu, False),
-                line("CLI in this process (no start-up)", whole_s, None),
-                line("… of which inside Channel.process", model_s, None, rate=False),
-                line("… of which around it (same run)", whole_s - model_s, None, rate=False),
+                line("CLI in this process (no start-up)", whole_s, whole_cpu),
+                line(
+                    "… of which inside Channel.process", model_s, whole_cpu - around_same_cpu, False
+                ),
+                line("… of which around it (same run)", whole_s - model_s, around_same_cpu, False),
                 line("CLI with a no-op channel (all but the model)", no_op_s, no_op_cpu),
                 line("… of which start-up (no-op CLI, 1-row log)", start_s, start_cpu, False),
             ],
@@ -281,7 +288,8 @@ def main() -> int:
     print(f"zeroline / statsmodels: {zl_rate / sm_rate:.3f}x")
     print(
         f"around the model: {(whole_s - model_s) / n * 1e6:.2f} µs a row in the same run "
-        f"(the timer adds {timer_cost * 1e6:.2f} µs a row of that), "
+        f"({around_same_cpu / n * 1e6:.2f} µs of CPU pro rata; the timer adds "
+        f"{timer_cost * 1e6:.2f} µs a row), "
         f"{around_s / n * 1e6:.2f} µs a row by difference of two runs "
         f"({around_cpu / n * 1e6:.2f} µs of CPU), "
         f"{no_op_s / n * 1e6:.2f} µs a row with a no-op channel "
