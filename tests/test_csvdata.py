@@ -9,12 +9,18 @@ of the first column's name, is common practice, no source.
 from __future__ import annotations
 
 import math
+import tempfile
+from collections.abc import Callable
 from pathlib import Path
+from unittest import mock
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
-from zeroline.csvdata import parse_time_cell, read_table
+from zeroline import csvdata
+from zeroline.csvdata import Table, parse_time_cell, read_table, read_table_cell_by_cell
 from zeroline.errors import InputError
 
 
@@ -119,3 +125,111 @@ def test_not_utf8_and_missing_file(tmp_path: Path) -> None:
         read_table(tmp_path / "nope.csv")
     with pytest.raises(InputError, match="cannot open"):
         read_table(tmp_path)  # a directory
+
+
+# --- the whole-column fast path against the cell-by-cell reader -------------------------
+
+_NUMBERS = st.one_of(
+    st.floats(allow_nan=False, allow_infinity=False).map(repr),
+    st.integers(-(10**20), 10**20).map(str),
+    st.sampled_from(["1_000", " 2.5 ", "+3", "-0", ".5", "5.", "1e-7", "0x10", "\u0661\u0662"]),
+)
+_BAD = st.sampled_from(["nan", "inf", "-Infinity", "1e999", "abc", "1,5", "--1"])
+_TIMES = st.one_of(
+    st.integers(0, 4 * 10**9).map(str),
+    st.sampled_from(["2026-05-01T00:00:00Z", "2026-05-01T02:00:00+02:00", "2026-05-01 10:00"]),
+)
+
+
+@st.composite
+def _logs(draw: st.DrawFn) -> str:
+    """A small CSV log, mostly well formed, sometimes not in one of the ways logs are not."""
+    width = draw(st.integers(1, 3))
+    names = ["time", "y", "x"][:width]
+    lines = [",".join(names)]
+    for _ in range(draw(st.integers(0, 12))):
+        shape = draw(st.sampled_from(["row"] * 8 + ["blank", "blanks", "short", "quoted"]))
+        if shape == "blank":
+            lines.append(draw(st.sampled_from(["", " "])))
+        elif shape == "blanks":
+            lines.append("," * (width - 1))
+        elif shape == "short":
+            lines.append(",".join(["1"] * (width + draw(st.sampled_from([-1, 1])))))
+        else:
+            cells = [draw(_TIMES)] + [draw(_NUMBERS) for _ in names[1:]]
+            for j in range(width):
+                if draw(st.integers(0, 9)) == 0:
+                    cells[j] = draw(st.one_of(st.just(""), _BAD))
+            if shape == "quoted":
+                j = draw(st.integers(0, width - 1))
+                cells[j] = '"' + cells[j] + draw(st.sampled_from(["", "\n", ","])) + '"'
+            lines.append(",".join(cells))
+    return draw(st.sampled_from(["\n", "\r\n"])).join(lines) + draw(st.sampled_from(["", "\n"]))
+
+
+def _outcome(read: Callable[[Path], Table], path: Path) -> tuple[object, ...]:
+    try:
+        table = read(path)
+    except InputError as error:
+        return ("error", str(error))
+    columns = tuple((name, values.tobytes()) for name, values in table.columns.items())
+    return ("table", columns, table.lines.tolist(), table.lines.dtype.str)
+
+
+@settings(max_examples=300, derandomize=True, deadline=None, database=None)
+@given(text=_logs(), block_rows=st.sampled_from([1, 2, 3, 65536]))
+def test_whole_columns_read_the_same_as_cell_by_cell(text: str, block_rows: int) -> None:
+    """The same columns to the last bit, the same line numbers, or the same error line,
+    whatever the block size (blank lines, rows of blank cells, quoted cells spanning lines,
+    short rows, bad numbers, ISO times)."""
+    with tempfile.TemporaryDirectory() as directory:
+        path = Path(directory) / "log.csv"
+        path.write_bytes(text.encode("utf-8"))
+        with mock.patch.object(csvdata, "BLOCK_ROWS", block_rows):
+            fast = _outcome(read_table, path)
+        assert fast == _outcome(read_table_cell_by_cell, path)
+
+
+def test_the_first_problem_is_reported_even_behind_a_later_one(tmp_path: Path) -> None:
+    """A bad number on line 3 is named, not the short row on line 5 (file order)."""
+    path = write(tmp_path, "y,x\n1,2\n3,abc\n5,6\n7\n")
+    with mock.patch.object(csvdata, "BLOCK_ROWS", 2), pytest.raises(InputError) as caught:
+        read_table(path)
+    assert (
+        str(caught.value)
+        == f"{path}:3: column 'x': 'abc' is not a finite number (leave the cell blank for no value)"
+    )
+
+
+def test_quoted_cell_over_two_lines_keeps_the_line_numbers(tmp_path: Path) -> None:
+    """A row with a quoted cell spanning lines is numbered by its last line (as it always
+    was: the csv reader's count after the row); the rows after it keep their own lines."""
+    table = read_table(write(tmp_path, 'y,x\n1,"2\n"\n3,4\n'))
+    assert table.lines.tolist() == [3, 4]
+    np.testing.assert_array_equal(table.columns["y"], [1.0, 3.0])
+
+
+def test_rows_of_blank_cells_are_blank_lines(tmp_path: Path) -> None:
+    """`,` alone (every cell blank) is skipped like an empty line; one blank cell is NaN."""
+    table = read_table(write(tmp_path, "y,x\n1,2\n,\n\n3,\n"))
+    assert table.lines.tolist() == [2, 5]
+    assert math.isnan(table.columns["x"][1])
+
+
+def test_numbers_are_what_python_float_reads(tmp_path: Path) -> None:
+    """Digit separators and non-ASCII digits read as Python's float reads them (as before)."""
+    table = read_table(write(tmp_path, "y,x\n1_000,\u0661\u0662\n 0.1 ,1e-7\n"))
+    assert table.columns["y"].tolist() == [1000.0, 0.1]
+    assert table.columns["x"].tolist() == [12.0, 1e-7]
+
+
+def test_ordinary_logs_take_the_fast_path(tmp_path: Path) -> None:
+    """Blank input cells, blank lines, quoted cells, CRLF and ISO times need no second
+    reading of the file (the cell-by-cell reader is only for problems and line-spanning
+    quotes), so a change that quietly sent every file there would fail here."""
+    text = 'time,y,x\n2026-05-01T00:00:00Z,1,\n\n1777593660,"2",3\n1777593720, 4 ,5\n'
+    path = write(tmp_path, text, newline="\r\n")
+    with mock.patch.object(csvdata, "read_table_cell_by_cell", side_effect=AssertionError):
+        table = read_table(path)
+    assert table.lines.tolist() == [2, 4, 5]
+    np.testing.assert_array_equal(table.columns["y"], [1.0, 2.0, 4.0])

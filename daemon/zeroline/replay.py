@@ -14,15 +14,15 @@ import math
 import re
 from collections.abc import Iterator
 from dataclasses import dataclass, field
-from typing import Any
 
 from zeroline.alerts import AlertEvent
 from zeroline.channel import Channel, ControlEvent, Corrected, Sample
 from zeroline.config import ChannelConfig, Config
-from zeroline.csvdata import TIME_COLUMN, Table, parse_time_cell
+from zeroline.csvdata import TIME_COLUMN, Array, Table, parse_time_cell
 from zeroline.errors import InputError
 
 VALUE_COLUMN = "value"
+CHUNK_ROWS = 65536  # rows turned into Python floats at a time
 
 
 @dataclass
@@ -95,43 +95,79 @@ def replay(
     table: Table, channel: Channel, events: list[ControlEvent], counts: ReplayCounts
 ) -> Iterator[Step]:
     """Feed every row of `table` to `channel`; yields one Step per processed row."""
-    times = table.require_complete(TIME_COLUMN, purpose="replay (the time of each row)")
-    values = table.column(VALUE_COLUMN, purpose="replay (the raw reading)")
-    input_columns = _input_columns(table, channel.config)
-    pending = list(events)
-    last = -math.inf
-    for row in range(table.rows):
-        counts.rows += 1
-        time = float(times[row])
-        while pending and pending[0].time <= time:
-            cleared = channel.control(pending.pop(0))
-            counts.alerts += len(cleared)
-            yield Step(row, None, cleared)
-        fields: dict[str, float] = {}
-        for name, column in input_columns.items():
-            value = float(column[row])
-            if math.isnan(value):
-                continue
-            spec = channel.config.inputs[name]
-            if spec.field is not None:
-                fields[spec.field] = value
-            else:
-                channel.set_input(name, time, value)
-        raw = float(values[row])
-        if math.isnan(raw):
-            counts.skipped_blank_value += 1
-            continue
-        if time <= last:
-            counts.skipped_not_newer += 1
-            continue
-        last = time
-        result, alert_events = channel.process(Sample(time, raw, fields))
-        counts.processed += 1
-        counts.alerts += len(alert_events)
+    for row, result, alert_events in replay_rows(table, channel, events, counts):
         yield Step(row, result, alert_events)
 
 
-def _input_columns(table: Table, config: ChannelConfig) -> dict[str, Any]:
+def replay_rows(
+    table: Table, channel: Channel, events: list[ControlEvent], counts: ReplayCounts
+) -> Iterator[tuple[int, Corrected | None, list[AlertEvent]]]:
+    """`replay` as plain (row, result, events) tuples, for callers that need no Step.
+
+    The columns are turned into lists of Python floats a chunk at a time (indexing a list
+    is cheaper than a numpy scalar, and a chunk bounds the memory this costs); NaN, a blank
+    cell, is the one value not equal to itself.
+    """
+    all_times = table.require_complete(TIME_COLUMN, purpose="replay (the time of each row)")
+    all_values = table.column(VALUE_COLUMN, purpose="replay (the raw reading)")
+    field_inputs, topic_inputs = _split_inputs(table, channel.config)
+    pending = list(events)
+    next_event = pending[0].time if pending else math.inf
+    last = -math.inf
+    process, set_input = channel.process, channel.set_input
+    for start in range(0, table.rows, CHUNK_ROWS):
+        chunk = slice(start, start + CHUNK_ROWS)
+        times, values = all_times[chunk].tolist(), all_values[chunk].tolist()
+        topics = [(name, column[chunk].tolist()) for name, column in topic_inputs]
+        fields_of = [(name, column[chunk].tolist()) for name, column in field_inputs]
+        for offset, time in enumerate(times):
+            row = start + offset
+            counts.rows += 1
+            while time >= next_event:
+                cleared = channel.control(pending.pop(0))
+                next_event = pending[0].time if pending else math.inf
+                counts.alerts += len(cleared)
+                yield row, None, cleared
+            for name, column in topics:
+                value = column[offset]
+                if value == value:  # not blank
+                    set_input(name, time, value)
+            fields: dict[str, float] = {}
+            for field_name, column in fields_of:
+                value = column[offset]
+                if value == value:
+                    fields[field_name] = value
+            raw = values[offset]
+            if raw != raw:
+                counts.skipped_blank_value += 1
+                continue
+            if time <= last:
+                counts.skipped_not_newer += 1
+                continue
+            last = time
+            result, alert_events = process(Sample(time, raw, fields))
+            counts.processed += 1
+            if alert_events:
+                counts.alerts += len(alert_events)
+            yield row, result, alert_events
+
+
+def _split_inputs(
+    table: Table, config: ChannelConfig
+) -> tuple[list[tuple[str, Array]], list[tuple[str, Array]]]:
+    """(payload field, column) of the inputs read from the reading's own payload, and
+    (input name, column) of those that arrive on their own topics, in config order."""
+    field_inputs, topic_inputs = [], []
+    for name, column in _input_columns(table, config).items():
+        spec = config.inputs[name]
+        if spec.field is not None:
+            field_inputs.append((spec.field, column))
+        else:
+            topic_inputs.append((name, column))
+    return field_inputs, topic_inputs
+
+
+def _input_columns(table: Table, config: ChannelConfig) -> dict[str, Array]:
     columns = {}
     for name in config.inputs:
         if name not in table.columns:

@@ -11,17 +11,18 @@ from __future__ import annotations
 
 import argparse
 import csv
+import io
 import json
 import sys
 import time
 from typing import IO, Any
 
-from zeroline.channel import Channel
+from zeroline.channel import Channel, Corrected
 from zeroline.config import load_config
 from zeroline.csvdata import read_table
 from zeroline.errors import InputError
 from zeroline.plot import Trace, check_plot_path, draw_trace, require_matplotlib
-from zeroline.replay import ReplayCounts, read_events, replay, resolve_channel
+from zeroline.replay import ReplayCounts, Step, read_events, replay_rows, resolve_channel
 
 PROGRESS_EVERY = 0.5  # seconds between progress-line updates
 
@@ -41,10 +42,6 @@ def add_parser(commands: Any) -> None:
         "--plot", metavar="FILE.png", help="also draw the replay (needs matplotlib)"
     )
     parser.set_defaults(handler=run)
-
-
-def _float(value: float | None) -> str:
-    return "" if value is None else repr(float(value))
 
 
 def run(args: argparse.Namespace) -> int:
@@ -72,34 +69,22 @@ def run(args: argparse.Namespace) -> int:
             raise InputError(f"{args.alerts}: cannot write ({error.strerror})") from None
     progress = _Progress(table.rows) if sys.stderr.isatty() else None
     trace = Trace(learn_mode=channel_config.learn.mode) if args.plot else None
+    rows = _RowWriter(output, channel.n_terms if args.coefficients else None)
     with output:
-        writer = csv.writer(output)
-        writer.writerow(header)
-        for step in replay(table, channel, events, counts):
-            for event in step.events:
-                alerts_out.write(json.dumps(event.to_json()) + "\n")
-            if trace is not None:
-                trace.add(step)
-            result = step.result
-            if result is None:
-                continue
-            row = [
-                repr(result.time),
-                repr(result.raw),
-                _float(result.baseline),
-                _float(result.corrected),
-                _float(result.uncertainty),
-                result.quality,
-            ]
-            if args.coefficients:
-                row += (
-                    [repr(float(c)) for c in result.coefficients]
-                    if result.coefficients is not None
-                    else [""] * channel.n_terms
-                )
-            writer.writerow(row)
-            if progress is not None:
-                progress.update(counts.rows)
+        csv.writer(output).writerow(header)
+        try:
+            for row, result, alert_events in replay_rows(table, channel, events, counts):
+                for event in alert_events:
+                    alerts_out.write(json.dumps(event.to_json()) + "\n")
+                if trace is not None:
+                    trace.add(Step(row, result, alert_events))
+                if result is None:
+                    continue
+                rows.add(result)
+                if progress is not None:
+                    progress.update(row + 1)  # rows read so far, this one included
+        finally:
+            rows.flush()
     if progress is not None:
         progress.finish(counts.rows)
     if alerts_out is not sys.stderr:
@@ -108,6 +93,60 @@ def run(args: argparse.Namespace) -> int:
         draw_trace(args.plot, name, trace)
     _summary(counts)
     return 0
+
+
+class _RowWriter:
+    """Output rows as CSV text, written a block at a time.
+
+    Each number is `repr` of a Python float, the shortest text that reads back to the same
+    bits, so a replay and the daemon agree to the last bit. Such text never needs CSV
+    quoting, and a missing value is an empty cell; the quality word goes through the csv
+    module once per distinct word, so the file is what `csv.writer` writes (CRLF line ends).
+    """
+
+    BLOCK = 4096  # rows per write
+
+    def __init__(self, output: IO[str], n_coefficients: int | None) -> None:
+        self._output = output
+        self._n_coefficients = n_coefficients
+        self._no_coefficients = "," * n_coefficients if n_coefficients else ""
+        self._lines: list[str] = []
+        self._quality_cells: dict[str, str] = {}
+
+    def add(self, result: Corrected) -> None:
+        quality = self._quality_cells.get(result.quality)
+        if quality is None:
+            quality = self._quality_cells[result.quality] = _csv_cell(result.quality)
+        baseline, corrected, uncertainty = result.baseline, result.corrected, result.uncertainty
+        line = (
+            f"{result.time!r},{result.raw!r},"
+            f"{'' if baseline is None else repr(float(baseline))},"
+            f"{'' if corrected is None else repr(float(corrected))},"
+            f"{'' if uncertainty is None else repr(float(uncertainty))},"
+            f"{quality}"
+        )
+        if self._n_coefficients is not None:
+            coefficients = result.coefficients
+            if coefficients is None:
+                line += self._no_coefficients
+            else:
+                line += "," + ",".join(map(repr, coefficients.tolist()))
+        self._lines.append(line)
+        if len(self._lines) >= self.BLOCK:
+            self.flush()
+
+    def flush(self) -> None:
+        if self._lines:
+            self._lines.append("")  # for the CRLF after the last line
+            self._output.write("\r\n".join(self._lines))
+            self._lines.clear()
+
+
+def _csv_cell(text: str) -> str:
+    """`text` as the csv module writes it within a row (quoted only if it must be)."""
+    buffer = io.StringIO()
+    csv.writer(buffer).writerow([text, ""])
+    return buffer.getvalue()[: -len(",\r\n")]
 
 
 def _summary(counts: ReplayCounts) -> None:
