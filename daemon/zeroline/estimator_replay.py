@@ -606,16 +606,16 @@ def _write_chunk(
     baseline = out.baseline[start:stop]
     np.divide(innovation, one_plus, out=baseline)  # y − φᵀθ after the row
     np.subtract(target, baseline, out=baseline)
-    # θ = θ₀ + R₀⁻¹u in the (p, m) layout of u, one matrix product; the offset from the
-    # prior mean is θ₀ − μ plus it, so the penalty needs no pass of its own for θ₀.
-    x0, prior_root = prepared.x0, est._prior_root
-    step = chunk.inverse @ u
-    offset = step + (x0 - est._prior_center)[:, None]
-    step += x0[:, None]
+    # θ = θ₀ + R₀⁻¹u and Λ(θ − μ) = Λ(θ₀ − μ) + ΛR₀⁻¹u from one matrix product, in the
+    # (p, m) layout of u; θ goes straight into the output (its (n, p) is column-major).
+    x0, prior_root, inverse = prepared.x0, est._prior_root, chunk.inverse
+    both = np.vstack([inverse, prior_root[:, None] * inverse]) @ u
+    coefficients = out.coefficients[start:stop].T
+    np.add(both[:p], x0[:, None], out=coefficients)
     if est.column_scale is not None:
-        step /= est._scale[:, None]
-    out.coefficients[start:stop].T[...] = step  # contiguous rows: (n, p) is column-major
-    offset *= prior_root[:, None]
+        coefficients /= est._scale[:, None]
+    offset = both[p:]
+    offset += (prior_root * (x0 - est._prior_center))[:, None]
     penalty = np.einsum("im,im->m", offset, offset)  # ‖Λ(θ − μ)‖²
     objective *= alpha
     penalty *= prepared.prior
