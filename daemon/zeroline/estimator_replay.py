@@ -19,12 +19,14 @@ The state at the chunk's end is recomputed exactly by one structured QR (`dtpqrt
 the chunk's rows under the starting factor, so rounding never accumulates from chunk to
 chunk, nor from block to block.
 
-Cost per row (p = 6, bench/RESULTS.md): the recursion is about a third (its P update and
-Pψ are 36 products each, which numpy does at ~0.45 ns), the block starts, the QR and the
-per-row results about a sixth each. Per-row prefix sums and a Cholesky per row (the previous
-form) cost about as much as the recursion and the block starts together but ran 1.2–1.3×
-slower overall (measured); blocks of ~630 are a balance between numpy's per-call cost
-(~1.3 µs, paid per step for all blocks) and the per-block start (paid once per block).
+Cost per row (p = 6, 1e6 rows, bench/RESULTS.md; shares from a profile on a loaded machine):
+the recursion about 30 % (its Pψ and P update are 36 products each, which numpy does at
+~0.4–0.9 ns), the block starts 18 %, the per-row results 16 %, planning 9 %, the end QR with
+its stacked rows 8 %, input checks 5 %. The previous form (a cumulative sum per matrix entry
+and a Cholesky per row) measured 1.1–1.3× slower in interleaved runs. ~630 blocks per chunk
+balance numpy's per-call cost (~0.3 µs per ufunc, ~1.5 µs per einsum, paid per step for all
+blocks at once) against the start states (paid per block); chunks over ~32k rows measured
+no faster (likely because their arrays no longer fit the 2 MB L2 cache; not verified).
 
 An exact window replays per sample (its rows leave one by one; no vectorised form is exact),
 and so does the very first row (it sets the clock) and any run too short to vectorise.
@@ -77,8 +79,9 @@ def replay_batch(
     """Learn rows phi (n, p), y (n) with fixed weights at times (n), as n calls of `update`.
 
     The estimator ends in the same state as after the per-sample calls and the returned
-    per-row arrays equal theirs (measured ≤ 5e-12 relative on well-conditioned bases). With
-    forgetting or none the work is vectorised in chunks; an exact window replays per sample.
+    per-row arrays equal theirs (measured ≤ 4e-13 relative on well-conditioned bases, 2.3e-11
+    on raw-second time terms; tests/test_estimator_replay.py). With forgetting or none the
+    work is vectorised in chunks; an exact window replays per sample.
     `coefficients` is column-major (each term's series contiguous; index it as usual).
 
     >>> import numpy as np
@@ -343,10 +346,12 @@ def _prepare_chunk(
     factor = est._factor
     x0 = est._solution()
     d = w / alpha
-    e = target - rows @ x0
-    psi_steps = np.empty((block, p, blocks))  # one product, broadcast over the steps
-    np.matmul(inverse.T, rows.reshape(blocks, block, p).transpose(1, 2, 0), out=psi_steps)
-    e_steps = np.ascontiguousarray(e.reshape(blocks, block).T)
+    # ψ = R₀⁻ᵀφ and φᵀθ₀ of every row by one product, broadcast over the steps.
+    to_steps = np.vstack([inverse.T, x0])
+    products = np.matmul(to_steps, rows.reshape(blocks, block, p).transpose(1, 2, 0))
+    psi_steps = products[:, :p]  # each step's (p, blocks) is contiguous
+    e_steps = np.empty((block, blocks))
+    np.subtract(target.reshape(blocks, block).T, products[:, p], out=e_steps)  # e = y − φᵀθ₀
     d_steps = np.ascontiguousarray(d.reshape(blocks, block).T)
     prior_root = est._prior_root
     lift = np.column_stack(  # [L, Λ(μ − θ₀)]: the rows of one unit of top-up
