@@ -153,10 +153,11 @@ def replay_throughput(n: int, rounds: int = 7) -> None:
     """Samples/s of the replay and of statsmodels, and the ratio in each round.
 
     Each side runs once untimed first: the first run in a process pays the page faults of
-    its freshly mapped result arrays (statsmodels' filter keeps ~0.6 GB of state
-    covariances, so its first run measured 2-4x slower than later ones), which is not a
-    cost of the method. The ratios are taken round by round (the order alternating), and
-    both their minimum and median are printed: the target is about every round.
+    its freshly mapped result arrays (statsmodels' filter keeps the k x k state covariances
+    of every row, ~0.6 GB here, and its first run measured 1.7-4.5x slower than later ones),
+    which is not a cost of the method. The ratios are taken round by round (the order
+    alternating), and both their minimum and median are printed: the target is about every
+    round.
     """
     print(f"2. replay of {n} samples at p = 6 ({rounds} interleaved rounds after one")
     print("   untimed run of each; samples/s)")
