@@ -124,6 +124,26 @@ class TestLongRuns:
         rows.weights[:] = 1.0
         assert_replay_equals_updates(rows, half_life=5 * DAY, prior_mean=[1.0, 0, 0, 0, 0, 2.0])
 
+    def test_outage_repeated_times_and_unlearnt_rows(self) -> None:
+        """A 40-day outage (20 half-lives, longer than any chunk), 100 rows at one time and
+        1,500 rows of weight 0 in a row."""
+        rows = random_rows(30_000, MINUTE, seed=11)
+        rows.times[15_000:] += 40 * DAY
+        rows.times[5_000:5_100] = rows.times[5_000]
+        rows.weights[8_000:9_500] = 0.0
+        assert_replay_equals_updates(rows, half_life=2 * DAY)
+
+    def test_twelve_terms(self) -> None:
+        """p = 12: a constant and eleven standard-normal inputs."""
+        rng = np.random.default_rng(13)
+        n = 20_000
+        times = np.cumsum(rng.uniform(30.0, 90.0, n))
+        phi = np.column_stack([np.ones(n), rng.standard_normal((n, 11))])
+        y = phi @ np.arange(12.0) + 0.1 * rng.standard_normal(n)
+        assert_replay_equals_updates(
+            Rows(phi, y, rng.uniform(0.0, 2.0, n), times), half_life=3 * DAY
+        )
+
 
 class TestBlocks:
     def test_several_top_ups_inside_one_block(self, monkeypatch: pytest.MonkeyPatch) -> None:
