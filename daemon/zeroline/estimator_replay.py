@@ -9,19 +9,24 @@ Approach
 Rows are processed in chunks. In the coordinates u = R₀(θ − θ₀) of a chunk's exact starting
 factor R₀ the start state is the identity, so the normal equations of every row inside the
 chunk, *preconditioned by R₀*, are well conditioned as long as the chunk is short enough
-(≤ 1 half-life, bounded added information; condition ≤ 2·(2 + _CHUNK_TRACE)). Each row's
-estimate then comes from prefix sums over the chunk (one cumulative sum per quantity) and a
-batched Cholesky solve over packed triangles. The state at the chunk's end is recomputed
-exactly by one structured QR (`dtpqrt`) of all the chunk's rows under the decayed starting
-factor, so rounding never accumulates from chunk to chunk.
+(≤ 2 half-lives and added information of trace ≤ _CHUNK_TRACE: every row's matrix then lies
+between I and (1 + 4.25 + 32)·I, condition below 40). A chunk's rows are cut into ~630 blocks
+of up to 32 rows. Every block starts from its exact state, solved from prefix sums of the
+blocks before it (one small sum per block, one batched Cholesky for all starts), and then
+runs the covariance recursion (k = Pψ, P ← P − c·k·kᵀ) over its few rows, all blocks side by
+side in each numpy call; a prior top-up inside a block restarts it from its exact state.
+The state at the chunk's end is recomputed exactly by one structured QR (`dtpqrt`) of all
+the chunk's rows under the starting factor, so rounding never accumulates from chunk to
+chunk, nor from block to block.
 
-Cost per row (p = 6, bench/RESULTS.md): about 30 cumulative sums (~4 ns per element each:
-numpy's accumulate runs the summed axis innermost whatever the layout, and blocked sums by
-products with a triangle of ones measured only 15 % faster) and the batched Cholesky with its
-solves (reciprocal diagonals, so a column costs one division and the rest are products) make
-up about two thirds; chunks of 8,000–16,000 rows are fastest (smaller ones pay Python's
-per-call cost, larger ones fall out of the 2 MB L2 cache: measured), so chunks longer than a
-half-life would not gain anything.
+Cost per row (p = 6, 1e6 rows, bench/RESULTS.md; shares from a profile on a loaded machine):
+the recursion about 30 % (its Pψ and P update are 36 products each, which numpy does at
+~0.4–0.9 ns), the block starts 18 %, the per-row results 16 %, planning 9 %, the end QR with
+its stacked rows 8 %, input checks 5 %. The previous form (a cumulative sum per matrix entry
+and a Cholesky per row) measured 1.1–1.3× slower in interleaved runs. ~630 blocks per chunk
+balance numpy's per-call cost (~0.3 µs per ufunc, ~1.5 µs per einsum, paid per step for all
+blocks at once) against the start states (paid per block); chunks over ~32k rows measured
+no faster (likely because their arrays no longer fit the 2 MB L2 cache; not verified).
 
 An exact window replays per sample (its rows leave one by one; no vectorised form is exact),
 and so does the very first row (it sets the clock) and any run too short to vectorise.
@@ -40,9 +45,12 @@ from scipy.linalg import lapack
 from zeroline.errors import InputError
 from zeroline.estimator import PRIOR_TOP_UP, FloatArray, RecursiveEstimator, _absorb
 
-_CHUNK_ROWS = 16384  # most rows in one vectorised chunk
+_CHUNK_ROWS = 32768  # most rows in one vectorised chunk
+_CHUNK_HALF_LIVES = 2.0  # longest span of a chunk, in half-lives
 _CHUNK_MIN = 16  # below this a chunk is not worth it; use the per-sample path
-_CHUNK_TRACE = 16.0  # most information a chunk may add, relative to its start
+_CHUNK_TRACE = 32.0  # most information a chunk may add, relative to its start
+_BLOCK_ROWS = 32  # most rows per block of the short recursion inside a chunk
+_BLOCKS = 630  # blocks a chunk is cut into (each numpy call of a step runs along them)
 
 
 @dataclass(frozen=True, slots=True)
@@ -71,8 +79,9 @@ def replay_batch(
     """Learn rows phi (n, p), y (n) with fixed weights at times (n), as n calls of `update`.
 
     The estimator ends in the same state as after the per-sample calls and the returned
-    per-row arrays equal theirs (measured ≤ 5e-12 relative on well-conditioned bases). With
-    forgetting or none the work is vectorised in chunks; an exact window replays per sample.
+    per-row arrays equal theirs (measured ≤ 4e-13 relative on well-conditioned bases, 2.3e-11
+    on raw-second time terms; tests/test_estimator_replay.py). With forgetting or none the
+    work is vectorised in chunks; an exact window replays per sample.
     `coefficients` is column-major (each term's series contiguous; index it as usual).
 
     >>> import numpy as np
@@ -111,7 +120,8 @@ def replay_batch(
             )
         else:
             stop = chunk.stop
-            _replay_chunk(estimator, x, y_array, weight_array, chunk, time_array, out)
+            prepared = _prepare_chunk(estimator, x, y_array, weight_array, chunk, time_array)
+            _finish_chunk(estimator, y_array, prepared, out)
         start = stop
     return out
 
@@ -188,8 +198,8 @@ class _Chunk:
     start: int
     stop: int
     alpha: FloatArray  # decay 2^(−(t − t₀)/h) from the chunk's start state
-    psi: FloatArray  # ψ = R₀⁻ᵀφ, shape (p, m), R₀ the start state's factor
-    inverse: FloatArray  # R₀⁻¹
+    inverse: FloatArray  # R₀⁻¹, R₀ the start state's factor
+    block: int  # rows per block of the recursion; divides stop − start
 
 
 def _plan_chunk(
@@ -197,14 +207,20 @@ def _plan_chunk(
 ) -> _Chunk:
     """The longest run of rows from `start` that keeps the chunk's equations well conditioned.
 
-    In u = R₀(θ − θ₀) the start state is the identity; a chunk may span at most one half-life
-    (decay ≥ 1/2) and add information of trace at most _CHUNK_TRACE, so the condition number
-    of every row's matrix stays below 2·(2 + _CHUNK_TRACE).
+    In u = R₀(θ − θ₀) the start state is the identity; a chunk may span at most
+    _CHUNK_HALF_LIVES half-lives (decay ≥ 1/4, so the prior's weight over α stays below
+    4·(1 + PRIOR_TOP_UP)) and add information of trace at most _CHUNK_TRACE, so every row's
+    matrix lies between I and (1 + 4.25 + _CHUNK_TRACE)·I. Its length is a multiple of the
+    block length.
     """
     assert est._time is not None
     stop = min(len(times), start + _CHUNK_ROWS)
     if est.half_life is not None:
-        stop = start + int(np.searchsorted(times[start:stop], est._time + est.half_life, "right"))
+        stop = start + int(
+            np.searchsorted(
+                times[start:stop], est._time + _CHUNK_HALF_LIVES * est.half_life, "right"
+            )
+        )
     p = est.n_terms
     alpha = _decay(est, times[start:stop])
     est._settle()  # G = F, so ψ = R₀⁻ᵀφ
@@ -217,7 +233,15 @@ def _plan_chunk(
     psi = inverse.T @ x[start:stop].T
     added = np.cumsum(weights[start:stop] / alpha * np.einsum("im,im->m", psi, psi))
     rows = int(np.searchsorted(added, _CHUNK_TRACE, "right"))
-    return _Chunk(start, start + rows, alpha[:rows], psi[:, :rows], inverse)
+    block = _block_rows(rows)
+    rows -= rows % block
+    return _Chunk(start, start + rows, alpha[:rows], inverse, block)
+
+
+def _block_rows(rows: int) -> int:
+    """Rows per block: _BLOCK_ROWS, fewer when the chunk is short (each step of the recursion
+    runs along the blocks, so it wants a few hundred of them to pay for its numpy calls)."""
+    return max(1, min(_BLOCK_ROWS, rows // _BLOCKS))
 
 
 def _first_top_up(times: FloatArray, low: int, ref_time: float, threshold: float) -> int:
@@ -273,161 +297,341 @@ def _packed(row: int, column: int) -> int:
     return row * (row + 1) // 2 + column
 
 
-def _packed_indices(p: int) -> tuple[FloatArray, FloatArray]:
-    """Row and column of each lower-triangle entry, in row-major packed order."""
-    pairs = [(row, column) for row in range(p) for column in range(row + 1)]
-    return np.array([r for r, _ in pairs]), np.array([c for _, c in pairs])
+@dataclass(frozen=True, slots=True)
+class _Prepared:
+    """A chunk whose end state is already set, with what its rows' results need."""
+
+    chunk: _Chunk
+    x0: FloatArray  # θ₀, internal units
+    d: FloatArray  # w/α
+    psi_steps: FloatArray  # ψ of row b·block + j at [j, :, b]; likewise (block, blocks):
+    e_steps: FloatArray  # e = y − φᵀθ₀
+    d_steps: FloatArray  # d
+    states: FloatArray  # packed start states, a column per block then per restart
+    restarts: list[tuple[int, int, int]]  # (step, block, column of `states`)
+    prior: FloatArray  # prior weight after each row
+    count: FloatArray  # effective n after each row
 
 
-def _replay_chunk(
+def _prepare_chunk(
     est: RecursiveEstimator,
     x: FloatArray,
     y: FloatArray,
     weights: FloatArray,
     chunk: _Chunk,
     times: FloatArray,
-    out: ReplayResult,
-) -> None:
-    """A chunk's rows at once, in coordinates u = R₀(θ − θ₀) of the chunk's start state.
+) -> _Prepared:
+    """Everything about a chunk that needs its start state, and then its exact end state.
 
-    With d = w/α, e = y − φᵀθ₀, L = Λ R₀⁻¹ the prior rows and r their residual at θ₀, the
-    normal equations of row i, divided by αᵢ, are
-
-        (I + Cᵢ·LᵀL + Σⱼ≤ᵢ dⱼψⱼψⱼᵀ) uᵢ = Cᵢ·Lᵀr + Σⱼ≤ᵢ dⱼψⱼeⱼ
-
-    (Cᵢ = Σ_{r ≤ i} δ_r/α_r over the prior's top-ups) and the minimum of the objective is
-    αᵢ·(ρ₀² + Cᵢ·‖r‖² + Σ dⱼeⱼ² − bᵢᵀuᵢ). Every prefix sum is one cumulative sum over a row
-    of `sums`: the start values (I, ρ₀², counts) and the top-ups are added to their rows'
-    entries before it, so no prefix needs a pass of its own.
+    In u = R₀(θ − θ₀), with d = w/α, e = y − φᵀθ₀ and the objective divided by α, the chunk
+    is a least-squares problem without forgetting whose start is u = 0 with information I
+    (plus the prior's top-ups, LᵀL with L = ΛR₀⁻¹, at their rows). Its rows are cut into
+    blocks of `chunk.block` rows; the arrays of a block's rows are laid out step by step
+    ([j, ..., b] for row b·block + j), so each step of the recursion reads contiguous rows.
+    The end state is recomputed exactly by one structured QR of all the chunk's rows under
+    the start factor, so rounding never accumulates from chunk to chunk.
     """
     p = est.n_terms
-    start, stop, alpha, psi = chunk.start, chunk.stop, chunk.alpha, chunk.psi
+    start, stop, alpha, inverse, block = (
+        chunk.start,
+        chunk.stop,
+        chunk.alpha,
+        chunk.inverse,
+        chunk.block,
+    )
     m = stop - start
+    blocks = m // block
     rows, w, t, target = x[start:stop], weights[start:stop], times[start:stop], y[start:stop]
     prior, tops, amounts, ref_weight, ref_time = _prior_schedule(est, t, alpha)
     factor = est._factor
-    x0 = est._solution()  # θ₀ (internal units)
-    fitted = rows @ x0
-    e = target - fitted
+    x0 = est._solution()
     d = w / alpha
-    prior_root, prior_center = est._prior_root, est._prior_center
-    inverse = chunk.inverse
-    lift = prior_root[:, None] * inverse  # L = Λ R₀⁻¹
-    prior_rhs = prior_root * (prior_center - x0)
-    # Rows of `sums`: the packed lower triangle of each row's matrix, then the pairs
-    # (bₖ, ψₖ) for the solve, then Σ d e², the count and the information.
-    n_matrix = p * (p + 1) // 2
-    sums = np.empty((n_matrix + 2 * p + 3, m))
-    weighted = psi * d
-    for i in range(p):  # row i of the packed triangle, dᵢψᵢψ[:i+1], in one product
-        begin = _packed(i, 0)
-        np.multiply(weighted[i], psi[: i + 1], out=sums[begin : begin + i + 1])
-        sums[_packed(i, i), 0] += 1.0  # the start state's I
-    rhs = sums[n_matrix : n_matrix + 2 * p].reshape(p, 2, m)
-    np.multiply(weighted, e, out=rhs[:, 0])
-    rhs[:, 1] = psi
-    total, count, information = sums[n_matrix + 2 * p :]
-    np.multiply(d, e * e, out=total)
-    np.divide(w > 0, alpha, out=count)
-    information[:] = d
-    total[0] += factor[p, p] ** 2
-    count[0] += est._count
-    information[0] += est._information
-    if tops:
-        below, right = _packed_indices(p)
-        gram = (lift.T @ lift)[below, right]  # LᵀL, packed
-        refills = np.asarray(amounts)
-        sums[:n_matrix, tops] += np.outer(gram, refills)
-        rhs[:, 0, tops] += np.outer(lift.T @ prior_rhs, refills)
-        total[tops] += refills * float(prior_rhs @ prior_rhs)
-    np.cumsum(sums[:n_matrix], axis=1, out=sums[:n_matrix])
-    np.cumsum(rhs[:, 0], axis=1, out=rhs[:, 0])
-    np.cumsum(sums[n_matrix + 2 * p :], axis=1, out=sums[n_matrix + 2 * p :])
-    quadratic = _solve_packed_in_place(sums[:n_matrix], rhs, p)  # bᵀM⁻¹b, ψᵀM⁻¹ψ
-    variance = np.divide(quadratic[1], alpha, out=out.variance[start:stop])  # φᵀPφ = ψᵀM̃⁻¹ψ
-    objective = alpha * (total - quadratic[0])
-    u = rhs[:, 0]
-    # θ = θ₀ + R₀⁻¹u in the (p, m) layout of u, one matrix product; the offset from the
-    # prior mean is x0 − μ plus it, so the penalty needs no pass of its own for θ₀.
-    step = inverse @ u
-    offset = step + (x0 - prior_center)[:, None]
-    step += x0[:, None]
-    if est.column_scale is not None:
-        step /= est._scale[:, None]
-    out.coefficients[start:stop].T[...] = step  # contiguous rows: (n, p) is column-major
-    offset *= prior_root[:, None]
-    penalty = np.einsum("im,im->m", offset, offset)  # ‖Λ(θ − μ)‖²
-    rss = np.maximum(objective - prior * penalty, 0.0)
+    # ψ = R₀⁻ᵀφ and φᵀθ₀ of every row by one product, broadcast over the steps.
+    to_steps = np.vstack([inverse.T, x0])
+    products = np.matmul(to_steps, rows.reshape(blocks, block, p).transpose(1, 2, 0))
+    psi_steps = products[:, :p]  # each step's (p, blocks) is contiguous
+    e_steps = np.empty((block, blocks))
+    np.subtract(target.reshape(blocks, block).T, products[:, p], out=e_steps)  # e = y − φᵀθ₀
+    d_steps = np.ascontiguousarray(d.reshape(blocks, block).T)
+    prior_root = est._prior_root
+    lift = np.column_stack(  # [L, Λ(μ − θ₀)]: the rows of one unit of top-up
+        [prior_root[:, None] * inverse, prior_root * (est._prior_center - x0)]
+    )
+    states, restarts = _start_states(
+        psi_steps, e_steps, d_steps, float(factor[p, p]) ** 2, tops, amounts, lift
+    )
+    count = np.cumsum(np.divide(w > 0, alpha))
+    count += est._count
     count *= alpha
-    sd = out.residual_sd[start:stop]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        np.sqrt(rss / (count - p), out=sd)
-    sd[count <= p] = math.nan
-    baseline = out.baseline[start:stop]
-    np.einsum("im,im->m", psi, u, out=baseline)  # φᵀθ = φᵀθ₀ + ψᵀu
-    baseline += fitted
-    before = out.residual[start:stop]
-    np.subtract(target, baseline, out=before)
-    before /= 1.0 - w * variance  # e⁻ = e⁺ / (1 − w·φᵀPφ)
-    np.subtract(target, before, out=out.prediction[start:stop])
-    # Exact state at the chunk's end: the start factor, decayed, absorbs every row (and the
-    # prior's top-ups) in one structured QR.
-    end = alpha[-1]
+    # The end state: QR([F₀; √d·[φ, y]; top-ups]) in the chunk's units, then decayed by α.
     stacked = np.empty((m + (p if tops else 0), p + 1), order="F")
-    scale = np.sqrt(end * d)
-    np.multiply(rows.T, scale, out=stacked[:m, :p].T)  # in the order of the output
-    np.multiply(target, scale, out=stacked[:m, p])
+    root = np.sqrt(d)
+    np.multiply(rows.T, root, out=stacked[:m, :p].T)
+    np.multiply(target, root, out=stacked[:m, p])
     if tops:
-        stacked[m:] = math.sqrt(end * float(np.sum(amounts))) * est._prior_rows
-    top = np.asfortranarray(math.sqrt(end) * factor)
+        stacked[m:] = math.sqrt(float(np.sum(amounts))) * est._prior_rows
+    end = alpha[-1]
+    information = est._information + float(np.sum(d))
+    absorbed = _absorb(factor.copy(order="F"), stacked)
+    absorbed *= math.sqrt(end)
     est._time = float(t[-1])  # first: the factor is set as the one at the current time
-    est._factor = _absorb(top, stacked)
+    est._factor = absorbed
     est._prior_ref_weight, est._prior_ref_time = ref_weight, ref_time
-    est._count, est._information = float(count[-1]), float(end * information[-1])
+    est._count, est._information = float(count[-1]), float(end * information)
+    return _Prepared(chunk, x0, d, psi_steps, e_steps, d_steps, states, restarts, prior, count)
 
 
-def _solve_packed_in_place(matrix: FloatArray, rhs: FloatArray, p: int) -> FloatArray:
-    """For a batch of SPD M given by its packed lower triangle (p(p+1)/2, m) and rhs (p, 2, m)
-    holding [b, ψ]: overwrite rhs[:, 0] with M⁻¹b and return (bᵀM⁻¹b, ψᵀM⁻¹ψ), shape (2, m).
+def _lower_sums(augmented: FloatArray, out: FloatArray) -> None:
+    """out[packed(i, j)] = Σ_steps augmented[:, i]·augmented[:, j] for j ≤ i, per column.
 
-    Cholesky M = LLᵀ entry by entry, each operation vectorised over the batch (numpy's
-    batched solve calls LAPACK once per matrix, measured ~5× slower at p = 6). In row-major
-    packed order each row's L[i, :j] is one contiguous block, so every inner product of the
-    factorisation and of the forward solve is one einsum. M is destroyed.
+    `augmented` is (steps, q, N); one einsum per row of the triangle (the full q×q einsum
+    and a batched matrix product per block both measured over twice as slow).
     """
-    m = matrix.shape[1]
-    dot = np.empty((2, m))
-    scratch = np.empty((p, m))
-
-    def row(i: int, stop: int) -> FloatArray:  # L[i, :stop]
+    q = augmented.shape[1]
+    for i in range(q):
         begin = _packed(i, 0)
-        return matrix[begin : begin + stop]
+        row = out[begin : begin + i + 1]
+        np.einsum("tjn,tn->jn", augmented[:, : i + 1], augmented[:, i], out=row)
 
-    reciprocal = np.empty((p, m))  # 1/L[j, j]: one division per column, products after
-    for i in range(p):  # L[i, j] = (M[i, j] − L[i, :j]·L[j, :j]) / L[j, j]
+
+def _start_states(
+    psi_steps: FloatArray,
+    e_steps: FloatArray,
+    d_steps: FloatArray,
+    rho_squared: float,
+    tops: list[int],
+    amounts: list[float],
+    lift: FloatArray,
+) -> tuple[FloatArray, list[tuple[int, int, int]]]:
+    """Exact state before the first row of every block, and before every top-up inside one.
+
+    The normal equations of the augmented rows [ψ, e], packed (lower triangle, row-major:
+    M, then b, then Σ d e²), are prefix sums over the blocks of each block's sums, plus the
+    start state (I, 0, ρ₀²) and the top-ups. A top-up on a block's first row joins that
+    block's start; one inside a block gets a restart of its own: the block's start plus
+    the rows before it and the top-ups so far in the block.
+
+    Returns the packed states (entries, N), a column per block then one per restart, and
+    the restarts as (step, block, column).
+    """
+    block, p, blocks = psi_steps.shape
+    q = p + 1
+    augmented = np.empty((block, q, blocks))  # √d·[ψ, e]
+    root = np.sqrt(d_steps)
+    np.multiply(psi_steps, root[:, None, :], out=augmented[:, :p])
+    np.multiply(e_steps, root, out=augmented[:, p])
+    below, right = np.tril_indices(q)
+    top_up = (lift.T @ lift)[below, right]
+    states = np.empty((len(below), blocks))  # the state at block b is Σ of columns ≤ b
+    _lower_sums(augmented[:, :, :-1], states[:, 1:])
+    states[:, 0] = 0.0
+    states[[_packed(i, i) for i in range(p)], 0] = 1.0
+    states[-1, 0] = rho_squared
+    inside: list[tuple[int, int, float]] = []  # (block, step, top-ups so far in the block)
+    for row, amount in zip(tops, amounts, strict=True):
+        index, step = divmod(row, block)
+        if step:
+            earlier = inside[-1][2] if inside and inside[-1][0] == index else 0.0
+            inside.append((index, step, earlier + amount))
+        if index + (step > 0) < blocks:
+            states[:, index + (step > 0)] += amount * top_up
+    np.cumsum(states, axis=1, out=states)
+    if not inside:
+        return states, []
+    index_array = np.array([r[0] for r in inside])
+    step_array = np.array([r[1] for r in inside])
+    partial = augmented[:, :, index_array] * (np.arange(block)[:, None] < step_array)[:, None, :]
+    restarts = np.empty((len(below), len(inside)))
+    _lower_sums(partial, restarts)
+    restarts += states[:, index_array]
+    restarts += top_up[:, None] * np.array([r[2] for r in inside])
+    columns = [(r[1], r[0], blocks + k) for k, r in enumerate(inside)]
+    return np.concatenate([states, restarts], axis=1), columns
+
+
+def _solve_states(packed: FloatArray, p: int) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """For N systems given as packed lower triangles of [[M, ·], [bᵀ, c]] (columns of
+    `packed`, destroyed), return P = M⁻¹ (p, p, N), u = M⁻¹b (p, N) and c − bᵀu (N).
+
+    Cholesky M = CCᵀ entry by entry, each operation vectorised over the N systems (numpy's
+    batched inverse calls LAPACK once per matrix, measured ~5× slower at p = 6), then
+    W = C⁻¹ and P = WᵀW. In row-major packed order each row's C[i, :j] is one contiguous
+    block, so every inner product is one einsum.
+    """
+    n = packed.shape[1]
+    dot = np.empty(n)
+
+    def row(i: int, stop: int) -> FloatArray:  # C[i, :stop]
+        begin = _packed(i, 0)
+        return packed[begin : begin + stop]
+
+    reciprocal = np.empty((p, n))  # 1/C[j, j]: one division per column, products after
+    for i in range(p):  # C[i, j] = (M[i, j] − C[i, :j]·C[j, :j]) / C[j, j]
         for j in range(i + 1):
-            entry = matrix[_packed(i, j)]
+            entry = packed[_packed(i, j)]
             if j:
-                np.einsum("km,km->m", row(i, j), row(j, j), out=dot[0])
-                np.subtract(entry, dot[0], out=entry)
+                np.einsum("kn,kn->n", row(i, j), row(j, j), out=dot)
+                np.subtract(entry, dot, out=entry)
             if j == i:
                 np.sqrt(entry, out=entry)
                 np.divide(1.0, entry, out=reciprocal[i])
             else:
                 np.multiply(entry, reciprocal[j], out=entry)
-    for j in range(p):  # L Y = [b, ψ]
-        if j:
-            np.einsum("km,kcm->cm", row(j, j), rhs[:j], out=dot)
-            np.subtract(rhs[j], dot, out=rhs[j])
-        np.multiply(rhs[j], reciprocal[j], out=rhs[j])
-    quadratic = np.einsum("ikm,ikm->km", rhs, rhs)  # ‖L⁻¹b‖² = bᵀM⁻¹b, and for ψ
-    solution = rhs[:, 0]
-    for i in range(p - 1, -1, -1):  # Lᵀ u = y, for b only, row by row of L
-        np.multiply(solution[i], reciprocal[i], out=solution[i])
-        if i:
-            np.multiply(row(i, i), solution[i], out=scratch[:i])
-            np.subtract(solution[:i], scratch[:i], out=solution[:i])
-    return np.asarray(quadratic)
+    inverse_factor = np.zeros((p, p, n))  # W = C⁻¹, lower triangular
+    for i in range(p):  # W[i, j] = −C[i, j:i]·W[j:i, j] / C[i, i]
+        inverse_factor[i, i] = reciprocal[i]
+        for j in range(i):
+            np.einsum("kn,kn->n", row(i, i)[j:], inverse_factor[j:i, j], out=dot)
+            np.multiply(dot, reciprocal[i], out=dot)
+            np.negative(dot, out=inverse_factor[i, j])
+    covariance = np.einsum("ijn,iln->jln", inverse_factor, inverse_factor)  # P = WᵀW
+    rhs = row(p, p)  # b
+    solution = np.einsum("ijn,jn->in", covariance, rhs)
+    minimum = packed[_packed(p, p)] - np.einsum("in,in->n", rhs, solution)
+    return covariance, solution, minimum
+
+
+def _finish_chunk(
+    est: RecursiveEstimator, y: FloatArray, prepared: _Prepared, out: ReplayResult
+) -> None:
+    """Solve the start states, run the blocks' recursion and write the chunk's results."""
+    covariance, solution, minimum = _solve_states(prepared.states, est.n_terms)
+    before, innovation, u, objective = _block_recursion(
+        prepared.psi_steps,
+        prepared.e_steps,
+        prepared.d_steps,
+        (covariance, solution, minimum),
+        prepared.restarts,
+    )
+    _write_chunk(est, y, prepared, before, innovation, u, objective, out)
+
+
+def _block_recursion(
+    psi_steps: FloatArray,
+    e_steps: FloatArray,
+    d_steps: FloatArray,
+    states: tuple[FloatArray, FloatArray, FloatArray],
+    restarts: list[tuple[int, int, int]],
+) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+    """Every block's rows by the covariance recursion from its exact start, blocks side by side.
+
+    Per row, with P and u the block's state before it (normalised units):
+    k = Pψ, s = ψᵀk, ε = e − ψᵀu, c = d/(1 + d·s), u ← u + c·k·ε, P ← P − c·k·kᵀ, and the
+    minimum objective grows by c·ε². A block is at most _BLOCK_ROWS rows and starts from an
+    exact P whose condition is below the chunk's bound, so its rounding stays that of a few
+    updates (the textbook form loses definiteness over long runs, not over 16 rows); a top-up
+    inside a block replaces that block's state by its exact restart (`restarts`: step,
+    block, column of `states`).
+
+    Returns per row (natural order): s (ψᵀPψ before the row), ε (the innovation), u after
+    the row (p, m) and the minimum objective after the row.
+    """
+    block, p, blocks = psi_steps.shape
+    covariance_all, solution_all, minimum_all = states
+    covariance = np.ascontiguousarray(covariance_all[:, :, :blocks])
+    # Per step: (k, u) side by side, so ψᵀk and ψᵀu are one einsum; u and the minimum
+    # objective of step j are those of step j − 1 plus the row's change (one pass each).
+    pair = np.empty((2, p, blocks))
+    gain, solution = pair
+    solutions = np.empty((block + 1, p, blocks))  # [j + 1]: u after the row of step j
+    solutions[0] = solution_all[:, :blocks]
+    objective = np.empty((block + 1, blocks))
+    objective[0] = minimum_all[:blocks]
+    dots = np.empty((block, 2, blocks))  # ψᵀPψ and ψᵀu before the row
+    innovation = np.empty((block, blocks))
+    scaled_gain = np.empty((p, blocks))
+    change = np.empty((p, blocks))
+    outer = np.empty((p, p, blocks))
+    c = np.empty(blocks)
+    by_step: dict[int, tuple[list[int], list[int]]] = {}  # step: (blocks, columns)
+    for restart_step, restart_block, restart_column in restarts:
+        entry = by_step.setdefault(restart_step, ([], []))
+        entry[0].append(restart_block)
+        entry[1].append(restart_column)
+    for step in range(block):
+        previous_u, previous_objective = solutions[step], objective[step]
+        restart = step in by_step
+        if restart:  # these rows start afresh from their exact state (a top-up before them)
+            index, column = np.array(by_step[step][0]), np.array(by_step[step][1])
+            covariance[:, :, index] = covariance_all[:, :, column]
+            # The previous row's results are outputs: swap the restart in for this step only.
+            kept_u, kept_objective = previous_u[:, index], previous_objective[index]
+            previous_u[:, index] = solution_all[:, column]
+            previous_objective[index] = minimum_all[column]
+        psi = psi_steps[step]
+        weight = d_steps[step]
+        np.einsum("ijb,jb->ib", covariance, psi, out=gain)  # k = Pψ
+        solution[...] = previous_u
+        np.einsum("xib,ib->xb", pair, psi, out=dots[step])  # ψᵀPψ, ψᵀu
+        s, eps = dots[step, 0], innovation[step]
+        np.subtract(e_steps[step], dots[step, 1], out=eps)  # ε = e − ψᵀu
+        np.multiply(weight, s, out=c)
+        c += 1.0
+        np.divide(weight, c, out=c)  # c = d / (1 + d·s)
+        np.multiply(gain, c, out=scaled_gain)  # c·k
+        np.multiply(c, eps, out=c)  # c·ε
+        np.multiply(eps, c, out=objective[step + 1])
+        objective[step + 1] += previous_objective  # + c·ε²
+        np.multiply(gain, c, out=change)
+        np.add(previous_u, change, out=solutions[step + 1])  # u + c·k·ε
+        if restart:
+            previous_u[:, index], previous_objective[index] = kept_u, kept_objective
+        if step + 1 < block:  # P −= c·k·kᵀ (not needed after a block's last row)
+            np.einsum("ib,jb->ijb", scaled_gain, gain, out=outer)
+            covariance -= outer
+    m = block * blocks
+    u = np.empty((p, m))
+    u.reshape(p, blocks, block)[...] = solutions[1:].transpose(1, 2, 0)
+    before = np.ascontiguousarray(dots[:, 0].T).reshape(m)
+    return before, innovation.T.reshape(m), u, objective[1:].T.reshape(m)
+
+
+def _write_chunk(
+    est: RecursiveEstimator,
+    y: FloatArray,
+    prepared: _Prepared,
+    before: FloatArray,
+    innovation: FloatArray,
+    u: FloatArray,
+    objective: FloatArray,
+    out: ReplayResult,
+) -> None:
+    """A chunk's per-row results from its recursion's s, ε, u and minimum objective."""
+    p = est.n_terms
+    chunk, d, alpha = prepared.chunk, prepared.d, prepared.chunk.alpha
+    start, stop = chunk.start, chunk.stop
+    target = y[start:stop]
+    one_plus = d * before
+    one_plus += 1.0  # 1 + d·ψᵀP₋ψ: the innovation over the residual after the row
+    variance = out.variance[start:stop]
+    np.divide(before, one_plus, out=variance)  # ψᵀP₊ψ = ψᵀP₋ψ / (1 + d·ψᵀP₋ψ)
+    variance /= alpha
+    out.residual[start:stop] = innovation
+    np.subtract(target, innovation, out=out.prediction[start:stop])
+    baseline = out.baseline[start:stop]
+    np.divide(innovation, one_plus, out=baseline)  # y − φᵀθ after the row
+    np.subtract(target, baseline, out=baseline)
+    # θ = θ₀ + R₀⁻¹u and Λ(θ − μ) = Λ(θ₀ − μ) + ΛR₀⁻¹u from one matrix product, in the
+    # (p, m) layout of u; θ goes straight into the output (its (n, p) is column-major).
+    x0, prior_root, inverse = prepared.x0, est._prior_root, chunk.inverse
+    both = np.vstack([inverse, prior_root[:, None] * inverse]) @ u
+    coefficients = out.coefficients[start:stop].T
+    np.add(both[:p], x0[:, None], out=coefficients)
+    if est.column_scale is not None:
+        coefficients /= est._scale[:, None]
+    offset = both[p:]
+    offset += (prior_root * (x0 - est._prior_center))[:, None]
+    penalty = np.einsum("im,im->m", offset, offset)  # ‖Λ(θ − μ)‖²
+    objective *= alpha
+    penalty *= prepared.prior
+    rss = np.subtract(objective, penalty, out=objective)
+    np.maximum(rss, 0.0, out=rss)
+    count = prepared.count
+    sd = out.residual_sd[start:stop]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        np.divide(rss, count - p, out=sd)
+        np.sqrt(sd, out=sd)
+    sd[count <= p] = math.nan
 
 
 __all__: Sequence[str] = ["ReplayResult", "replay_batch"]

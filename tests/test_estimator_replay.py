@@ -1,0 +1,181 @@
+"""The vectorised replay (`zeroline.estimator_replay`) against the per-sample path.
+
+Reference: n calls of `RecursiveEstimator.update` on the same rows (the square-root
+information form, itself checked against batch least squares in test_estimator.py). Every
+test compares all six per-row results and the end state. Tolerance 1e-9 relative, as for the
+replay's contract; measured when set: worst 2.3e-11 (the raw-time basis's coefficients, whose
+t² term is ~1e-10 of the largest) and 2e-12 (its variance), at most 4e-13 elsewhere. All data
+are invented here from seeded generators.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pytest
+
+import zeroline.estimator_replay as replay
+from zeroline.estimator import RecursiveEstimator, replay_batch
+
+MINUTE, HOUR, DAY = 60.0, 3600.0, 86400.0
+TOLERANCE = 1e-9
+
+
+@dataclass
+class Rows:
+    phi: np.ndarray
+    y: np.ndarray
+    weights: np.ndarray
+    times: np.ndarray
+
+
+def random_rows(n: int, gap: float, seed: int, *, zero_weights: bool = True) -> Rows:
+    """A constant and five standard-normal inputs, irregular gaps, weights in [0, 2)."""
+    rng = np.random.default_rng(seed)
+    times = np.cumsum(rng.uniform(0.5 * gap, 1.5 * gap, n))
+    phi = np.column_stack([np.ones(n), rng.standard_normal((n, 5))])
+    y = phi @ np.linspace(1.0, 2.0, 6) + 0.05 * rng.standard_normal(n)
+    weights = rng.uniform(0.0, 2.0, n)
+    if zero_weights:
+        weights[rng.random(n) < 0.1] = 0.0
+    return Rows(phi, y, weights, times)
+
+
+def raw_time_rows(n: int, seed: int) -> Rows:
+    """An ill-scaled drift basis in raw seconds: 1, t, t²/1e7, daily sin/cos (1-min samples)."""
+    rng = np.random.default_rng(seed)
+    times = np.cumsum(rng.uniform(30.0, 90.0, n))
+    days = times / DAY
+    phi = np.column_stack(
+        [np.ones(n), times, times**2 / 1e7, np.sin(2 * np.pi * days), np.cos(2 * np.pi * days)]
+    )
+    y = phi @ [3.0, 1e-7, 1e-9, 0.3, 0.1] + 0.05 * rng.standard_normal(n)
+    return Rows(phi, y, np.ones(n), times)
+
+
+def assert_replay_equals_updates(rows: Rows, **settings: object) -> None:
+    """replay_batch and n calls of update agree on every row's results and the end state."""
+    n, p = rows.phi.shape
+    fast = RecursiveEstimator(p, **settings)  # type: ignore[arg-type]
+    slow = RecursiveEstimator(p, **settings)  # type: ignore[arg-type]
+    out = replay_batch(fast, rows.phi, rows.y, rows.weights, rows.times)
+    coefficients, baseline, variance = np.empty((n, p)), np.empty(n), np.empty(n)
+    sd, prediction, residual = np.empty(n), np.empty(n), np.empty(n)
+    for i in range(n):
+        innovation = slow.update(rows.phi[i], rows.y[i], rows.weights[i], rows.times[i])
+        prediction[i], residual[i] = innovation.prediction, innovation.residual
+        coefficients[i], baseline[i] = slow.coefficients, slow.predict(rows.phi[i])
+        variance[i], sd[i] = slow.variance(rows.phi[i]), slow.residual_sd
+
+    def relative(a: np.ndarray, b: np.ndarray) -> float:
+        return float(np.max(np.abs(a - b)) / np.max(np.abs(b)))
+
+    # Coefficients row by row, relative to that row's largest (a term can be ~0 on its own;
+    # a row of exact zeros, a zero-weight first row under a zero prior mean, stays zero).
+    row_scale = np.maximum(np.abs(coefficients).max(axis=1, keepdims=True), 1e-300)
+    assert np.max(np.abs(out.coefficients - coefficients) / row_scale) < TOLERANCE
+    assert relative(out.baseline, baseline) < TOLERANCE
+    assert relative(out.prediction, prediction) < TOLERANCE
+    assert relative(out.residual, residual) < TOLERANCE
+    assert np.max(np.abs(out.variance / variance - 1.0)) < TOLERANCE
+    defined = np.isfinite(sd)
+    assert np.array_equal(defined, np.isfinite(out.residual_sd))
+    assert np.max(np.abs(out.residual_sd[defined] / sd[defined] - 1.0)) < TOLERANCE
+    assert relative(fast.coefficients, slow.coefficients) < TOLERANCE
+    assert fast.variance(rows.phi[-1]) == pytest.approx(slow.variance(rows.phi[-1]), rel=1e-9)
+    assert fast.residual_sd == pytest.approx(slow.residual_sd, rel=1e-9)
+    assert fast.prior_weight == pytest.approx(slow.prior_weight, rel=1e-12)
+    assert fast.effective_n == pytest.approx(slow.effective_n, rel=1e-12)
+    assert fast.information_count == pytest.approx(slow.information_count, rel=1e-12)
+    assert fast.time == slow.time
+
+
+class TestLongRuns:
+    def test_week_half_life_one_minute_samples(self) -> None:
+        """60,000 rows (6 weeks) at a 7-day half-life: chunks of two half-lives, blocks of
+        32 rows, the prior topped up inside blocks about every 14.6 h."""
+        assert_replay_equals_updates(random_rows(60_000, MINUTE, seed=1), half_life=7 * DAY)
+
+    def test_no_forgetting(self) -> None:
+        """70,000 rows without forgetting: full chunks, the information keeps growing."""
+        assert_replay_equals_updates(random_rows(70_000, MINUTE, seed=2))
+
+    def test_short_half_life(self) -> None:
+        """A 3-hour half-life at 1-min samples: short chunks, blocks of one row or a few."""
+        assert_replay_equals_updates(random_rows(20_000, MINUTE, seed=3), half_life=3 * HOUR)
+
+    def test_raw_time_terms_are_ill_scaled(self) -> None:
+        """Raw-second time terms (t up to 4e6 s, t²/1e7 up to 1.6e6) with forgetting."""
+        assert_replay_equals_updates(raw_time_rows(50_000, seed=4), half_life=3 * DAY)
+
+    def test_column_scale(self) -> None:
+        """With a column scale the replay works in the same internal units as update."""
+        rows = random_rows(30_000, MINUTE, seed=5)
+        rows.phi[:, 1] *= 1e4
+        rows.phi[:, 2] *= 1e-4
+        assert_replay_equals_updates(
+            rows, half_life=2 * DAY, column_scale=[1.0, 1e4, 1e-4, 1.0, 1.0, 1.0]
+        )
+
+    def test_unit_weights(self) -> None:
+        """All weights 1 (the common case) and a prior mean away from zero."""
+        rows = random_rows(40_000, MINUTE, seed=6, zero_weights=False)
+        rows.weights[:] = 1.0
+        assert_replay_equals_updates(rows, half_life=5 * DAY, prior_mean=[1.0, 0, 0, 0, 0, 2.0])
+
+    def test_outage_repeated_times_and_unlearnt_rows(self) -> None:
+        """A 40-day outage (20 half-lives, longer than any chunk), 100 rows at one time and
+        1,500 rows of weight 0 in a row."""
+        rows = random_rows(30_000, MINUTE, seed=11)
+        rows.times[15_000:] += 40 * DAY
+        rows.times[5_000:5_100] = rows.times[5_000]
+        rows.weights[8_000:9_500] = 0.0
+        assert_replay_equals_updates(rows, half_life=2 * DAY)
+
+    def test_twelve_terms(self) -> None:
+        """p = 12: a constant and eleven standard-normal inputs."""
+        rng = np.random.default_rng(13)
+        n = 20_000
+        times = np.cumsum(rng.uniform(30.0, 90.0, n))
+        phi = np.column_stack([np.ones(n), rng.standard_normal((n, 11))])
+        y = phi @ np.arange(12.0) + 0.1 * rng.standard_normal(n)
+        assert_replay_equals_updates(
+            Rows(phi, y, rng.uniform(0.0, 2.0, n), times), half_life=3 * DAY
+        )
+
+
+class TestBlocks:
+    def test_several_top_ups_inside_one_block(self, monkeypatch: pytest.MonkeyPatch) -> None:
+        """With few blocks per chunk, a block of 32 rows holds two or three top-ups (every
+        ~12 rows at 10-min samples and a 1-day half-life): each restarts exactly."""
+        monkeypatch.setattr(replay, "_BLOCKS", 2)
+        assert_replay_equals_updates(random_rows(6_000, 10 * MINUTE, seed=7), half_life=DAY)
+
+    def test_top_up_on_a_block_boundary(self, monkeypatch: pytest.MonkeyPatch) -> None:
+        """Regular 1-min samples and blocks of 29 rows, so some top-ups fall on a block's
+        first row (they join its start state) and others inside it."""
+        monkeypatch.setattr(replay, "_BLOCK_ROWS", 29)
+        rows = random_rows(40_000, MINUTE, seed=8)
+        rows.times = MINUTE * np.arange(40_000.0)
+        assert_replay_equals_updates(rows, half_life=2 * DAY)
+
+    def test_replay_continues_an_estimator(self) -> None:
+        """A replay after per-sample updates (and a second replay after it) continues
+        exactly where the estimator stood."""
+        rows = random_rows(30_000, MINUTE, seed=9)
+        fast = RecursiveEstimator(6, half_life=4 * DAY)
+        slow = RecursiveEstimator(6, half_life=4 * DAY)
+        for i in range(500):
+            for est in (fast, slow):
+                est.update(rows.phi[i], rows.y[i], rows.weights[i], rows.times[i])
+        replay_batch(fast, rows.phi[500:20_000], rows.y[500:20_000], None, rows.times[500:20_000])
+        out = replay_batch(
+            fast, rows.phi[20_000:], rows.y[20_000:], rows.weights[20_000:], rows.times[20_000:]
+        )
+        for i in range(500, 30_000):
+            weight = 1.0 if i < 20_000 else rows.weights[i]
+            slow.update(rows.phi[i], rows.y[i], weight, rows.times[i])
+        last = slow.coefficients
+        assert np.max(np.abs(out.coefficients[-1] - last)) / np.max(np.abs(last)) < TOLERANCE
+        assert fast.residual_sd == pytest.approx(slow.residual_sd, rel=1e-9)
