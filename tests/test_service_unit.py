@@ -381,6 +381,26 @@ class TestReload:
         service.stop()
 
 
+    def test_reload_applies_new_alert_settings_to_kept_models(self, state_dir: Path) -> None:
+        """Alert settings are not part of the model: a kept channel keeps its estimator
+        (bit for bit) and takes the new limits, a new rule included."""
+        text = config_text(state_dir, extra="alerts: {drift_limit: 5.0}")
+        broker = FakeBroker()
+        service = start(parse_config(text), broker, state_dir)
+        for t, v, _ in readings(30):
+            broker.deliver("site/a/gas", reading_payload(t, v))
+        assert service.wait_idle(5)
+        before = service.table.channels["a-gas"].estimator.coefficients
+        changed = text.replace("{drift_limit: 5.0}", "{drift_limit: 0.5, rate_limit: 1/d}")
+        service.request_reload(parse_config(changed))
+        assert service.wait_idle(5, lambda: service._reload is None)
+        kept = service.table.channels["a-gas"]
+        assert np.array_equal(kept.estimator.coefficients, before)
+        rules = kept.alerts.book.rules
+        assert rules["drift_limit"].limit == 0.5  # type: ignore[attr-defined]
+        assert "rate_limit" in rules
+        service.stop()
+
 class TestOutputs:
     def test_alerts_are_retained_on_the_channel_and_per_rule_topics(self, state_dir: Path) -> None:
         """A drift beyond the limit: the event on <ch>/alert and <ch>/alert/drift_limit,

@@ -206,6 +206,8 @@ class Channel:
         self._offset_size = parts.offset_size
         self._gain_size = parts.gain_size
         self._min_samples = config.learn.min_samples or 2 * self.n_terms
+        if parts.estimator is None:  # the first channel of the template: the long way
+            parts.estimator = self._new_estimator()
         self._estimator = parts.estimator.blank_copy()
         self._squared = SquaredInformation(self.n_terms, config.memory.half_life)
         self._inputs = InputCache(parts.max_ages)
@@ -770,17 +772,8 @@ class _TemplateParts:
             if config.epoch is None or config.gain is None
             else config.gain.with_epoch(config.epoch)
         )
-        prior_mean = np.zeros(self.offset_size + self.gain_size)
-        if config.gain is not None:
-            prior_mean[0] = 1.0  # as `Channel._new_estimator`
-        memory = config.memory
-        self.estimator = RecursiveEstimator(
-            self.offset_size + self.gain_size,
-            half_life=memory.half_life,
-            window=memory.window,
-            prior_sd=memory.prior_sd,
-            prior_mean=prior_mean,
-        )
+        #: A never-fed estimator that channels copy (set by the first `Channel`).
+        self.estimator: RecursiveEstimator | None = None
         self.alerts = ChannelAlerts("", config.alerts, cap=config.cap)
         self._layout: list[tuple[str, int]] | None = None
         self._blank: Channel | None = None
@@ -869,8 +862,8 @@ def _unpacked(config: ChannelConfig, names: Sequence[str], packed: PackedChannel
         raise InputError(f"packed state holds {rows.shape} values for {len(names)} channels")
     layout = [(str(name), int(size)) for name, size in packed.layout]
     if layout != parts.layout:  # alert rules or inputs changed in the config
-        blank = pack_channels([Channel(config, "")]).rows[0]
-        rows = rearranged(rows, layout, parts.layout, blank)
+        blank_row = pack_channels([parts.blank_channel()]).rows[0]
+        rows = rearranged(rows, layout, parts.layout, blank_row)
     width = parts.scalar_width
     scalars = rows[:, :width].tolist()
     n = parts.offset_size + parts.gain_size
@@ -880,11 +873,12 @@ def _unpacked(config: ChannelConfig, names: Sequence[str], packed: PackedChannel
     squared[:, upper[0], upper[1]] = rows[:, width + 1 : width + 1 + len(upper[0])]
     squared[:, upper[1], upper[0]] = rows[:, width + 1 : width + 1 + len(upper[0])]
     sides = [side or {} for side in packed.sides]
+    blank = parts.blank_channel()  # also makes parts.estimator
+    assert parts.estimator is not None
     estimators = unpack_estimators(
         parts.estimator, rows[:, width + 1 + len(upper[0]) :], [s.get("window") for s in sides]
     )
     half_life = config.memory.half_life
-    blank = parts.blank_channel()
     channels = []
     for i, name in enumerate(names):
         information = object.__new__(SquaredInformation)
