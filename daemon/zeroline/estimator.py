@@ -809,12 +809,13 @@ def pack_estimators(
         dtype=np.float64,
     ).reshape(len(estimators), len(_CLOCK))
     missing = np.full(p, math.nan)
-    solution = np.array(
+    solved = [e._theta is not None for e in estimators]
+    solution = np.column_stack(
         [
-            (0.0, math.nan, *missing) if e._theta is None else (1.0, e._penalty, *e._theta)
-            for e in estimators
-        ],
-        dtype=np.float64,
+            np.array(solved, dtype=np.float64),
+            [e._penalty if e._theta is not None else math.nan for e in estimators],
+            np.stack([missing if e._theta is None else e._theta for e in estimators]),
+        ]
     )
     block = np.hstack(
         [
