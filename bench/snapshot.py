@@ -33,7 +33,6 @@ from zeroline.state import SnapshotGroup, StateStore
 WARM_READINGS = 5
 
 
-
 def timed(action: Callable[[], object], repeats: int) -> tuple[float, object]:
     times, result = [], None
     for _ in range(repeats):

@@ -380,7 +380,6 @@ class TestReload:
         assert service.table.channels["a-ph"].last_time == -math.inf  # fresh
         service.stop()
 
-
     def test_reload_applies_new_alert_settings_to_kept_models(self, state_dir: Path) -> None:
         """Alert settings are not part of the model: a kept channel keeps its estimator
         (bit for bit) and takes the new limits, a new rule included."""
@@ -400,6 +399,7 @@ class TestReload:
         assert rules["drift_limit"].limit == 0.5  # type: ignore[attr-defined]
         assert "rate_limit" in rules
         service.stop()
+
 
 class TestOutputs:
     def test_alerts_are_retained_on_the_channel_and_per_rule_topics(self, state_dir: Path) -> None:

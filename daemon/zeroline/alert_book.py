@@ -30,8 +30,16 @@ from zeroline.errors import ConfigError
 RuleT = TypeVar("RuleT", bound=AlertRule)
 
 
-#: The typed handles `_resolve_handles` sets (`blank_copy` re-points them).
-_HANDLES = ("_drift", "_rate", "_forecast", "_residual", "_checks", "_correction", "_health")
+#: The typed handle `_resolve_handles` sets for each rule (`blank_copy` re-points them).
+_HANDLE_OF = {
+    DriftLimitRule.name: "_drift",
+    RateLimitRule.name: "_rate",
+    ForecastRule.name: "_forecast",
+    ResidualChangeRule.name: "_residual",
+    CheckFailureRule.name: "_checks",
+    CorrectionCapRule.name: "_correction",
+    ModelHealthRule.name: "_health",
+}
 
 
 class AlertBook:
@@ -158,15 +166,13 @@ class AlertBook:
     def blank_copy(self, channel: str) -> AlertBook:
         """The same rules for `channel`, all clear (cheaper than building the rules)."""
         new = object.__new__(AlertBook)
-        new.__dict__.update(self.__dict__)
+        state = new.__dict__
+        state.update(self.__dict__)
         new.channel = channel
         rules = {name: rule.blank_copy(channel) for name, rule in self.rules.items()}
         new.rules = rules
-        state = new.__dict__
-        for handle in _HANDLES:  # point the typed handles at the copies
-            rule = state[handle]
-            if rule is not None:
-                state[handle] = rules[rule.name]
+        for name in rules:  # point the typed handles at the copies
+            state[_HANDLE_OF[name]] = rules[name]
         return new
 
     def packed_layout(self) -> list[tuple[str, int]]:
