@@ -22,10 +22,8 @@ what makes a replay a faithful rehearsal of the daemon.
 
 from __future__ import annotations
 
-import contextlib
-import gc
 import math
-from collections.abc import Callable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from statistics import NormalDist
 from typing import Any, ClassVar
@@ -42,7 +40,13 @@ from zeroline.errors import InputError
 from zeroline.estimator import RecursiveEstimator, pack_estimators, unpack_estimators
 from zeroline.estimator import packed_layout as estimator_layout
 from zeroline.inputs import InputCache
-from zeroline.state_layout import PackedChannels, number, optional, rearranged
+from zeroline.state_layout import (
+    PackedChannels,
+    collector_paused,
+    number,
+    optional,
+    rearranged,
+)
 
 Array = npt.NDArray[np.float64]
 STATE_VERSION = 1
@@ -817,13 +821,17 @@ class _TemplateParts:
 
 def pack_channels(channels: Sequence[Channel]) -> PackedChannels:
     """Pack channels that share one config (one template); nothing in them changes."""
+    with collector_paused():
+        return _packed(channels)
+
+
+def _packed(channels: Sequence[Channel]) -> PackedChannels:
     config = channels[0].config
     parts = _TemplateParts.of(config)
     if any(channel.config is not config for channel in channels):
         raise ValueError("pack_channels takes the channels of one config")
     names = parts.input_names
-    with _collector_paused():
-        scalars = np.array([c._pack_scalars(names) for c in channels], dtype=np.float64)
+    scalars = np.array([c._pack_scalars(names) for c in channels], dtype=np.float64)
     n = parts.offset_size + parts.gain_size
     upper = np.triu_indices(n)
     squared = np.stack([c._squared._matrix for c in channels])[:, upper[0], upper[1]]
@@ -849,7 +857,7 @@ def unpack_channels(
     InputError if the state was saved for another model. Alert rules or inputs that were
     added to or removed from the config since are matched by name: new ones start clear.
     """
-    with _collector_paused():
+    with collector_paused():
         return _unpacked(config, names, packed)
 
 
@@ -887,23 +895,6 @@ def _unpacked(config: ChannelConfig, names: Sequence[str], packed: PackedChannel
         information._time = optional(squared_time[i])
         channels.append(blank.restored_copy(name, scalars[i], information, estimators[i], sides[i]))
     return channels
-
-
-@contextlib.contextmanager
-def _collector_paused() -> Iterator[None]:
-    """Pause Python's cyclic garbage collector while many objects are made at once.
-
-    Each restored channel is a few dozen objects that all stay alive; with the collector
-    on, its generational passes over the growing heap took about as long as making the
-    objects (measured). Nothing made here is garbage, so pausing frees nothing late.
-    """
-    enabled = gc.isenabled()
-    gc.disable()
-    try:
-        yield
-    finally:
-        if enabled:
-            gc.enable()
 
 
 def _standardised(innovation: Any) -> float | None:

@@ -2,7 +2,7 @@
 
 Why two files. A reading is acknowledged to the broker only once its effect on the model is
 on disk (see `zeroline.service`), so durability sits on the per-message path. Writing a full
-snapshot for every batch of acknowledgements costs O(channels) bytes each time (about 800 B
+snapshot for every batch of acknowledgements costs O(channels) bytes each time (about 840 B
 per channel at p = 6): with a thousand channels that is most of a megabyte per batch, far
 too much for a gateway's flash. Instead:
 
@@ -29,8 +29,9 @@ entry per group of channels of one template: `template`, `model` (the config's m
 `layout` (field names and sizes, see `zeroline.state_layout`), `names`, `wildcards`, the
 block's `offset` and `rows` in the payload, and `sides` (channel index → JSON side entry,
 only for the few channels that have one). Numbers are stored as their float64 bytes, so a
-restored channel continues bit for bit; a 10,000-channel snapshot is written and read in
-tens of milliseconds instead of seconds as JSON.
+restored channel continues bit for bit, and the file itself costs little: for 10,000
+channels (8.4 MB) encoding and the durable write took ~25 ms, reading and checking ~10 ms
+(bench/snapshot.py; packing and rebuilding the channels is the rest).
 
 At start the daemon loads the snapshot and replays the journal records after it through the
 same code that processed them the first time (without publishing again), so the restored
@@ -79,7 +80,7 @@ from typing import Any
 import numpy as np
 
 from zeroline.errors import InputError
-from zeroline.state_layout import PackedChannels
+from zeroline.state_layout import PackedChannels, collector_paused
 
 _log = logging.getLogger(__name__)
 
@@ -312,6 +313,11 @@ def encode_snapshot(groups: Sequence[SnapshotGroup], meta: Mapping[str, Any]) ->
 
 def decode_snapshot(data: bytes) -> Snapshot:
     """Parse and check a snapshot file's bytes; SnapshotError says what is wrong."""
+    with collector_paused():  # the header holds every channel's name and wildcards
+        return _decoded(data)
+
+
+def _decoded(data: bytes) -> Snapshot:
     start = len(MAGIC) + _PREFIX.size
     if not data.startswith(MAGIC):
         raise SnapshotError("is not a zeroline snapshot")
