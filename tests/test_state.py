@@ -47,9 +47,11 @@ def saved_bytes(tmp_path: Path) -> bytes:
 
 
 def with_crc(data: bytes) -> bytes:
-    """`data` with its CRC recomputed, so a test reaches the checks behind the CRC."""
+    """`data` with its CRC (and header size, for an edited header) recomputed, so a test
+    reaches the checks behind them."""
     start = len(MAGIC) + 24
-    version, _, header, payload = struct.unpack_from("<IIQQ", data, len(MAGIC))
+    version, _, _, payload = struct.unpack_from("<IIQQ", data, len(MAGIC))
+    header = len(data) - start - payload
     prefix = struct.pack("<IIQQ", version, zlib.crc32(data[start:]), header, payload)
     return MAGIC + prefix + data[start:]
 
@@ -101,6 +103,7 @@ class TestSnapshot:
             (lambda d: with_crc(d.replace(b'"groups"', b'"groupz"')), "no channel groups"),
             (lambda d: with_crc(d.replace(b'"rows":2', b'"rows":9')), "damaged channel group"),
             (lambda d: with_crc(d.replace(b'{"format"', b'["format"')), "not valid JSON"),
+            (lambda d: with_crc(d.replace(b'"sides":{}', b'"sides":{"0":[]}')), "side entry"),
         ],
     )
     def test_damaged_snapshot_is_set_aside_with_a_clear_line(

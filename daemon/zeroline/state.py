@@ -366,6 +366,8 @@ def _group(entry: Any, payload: memoryview) -> SnapshotGroup:
         block = np.frombuffer(payload[offset:end], dtype=_FLOAT).reshape(rows, width)
         sides: list[dict[str, Any] | None] = [None] * rows
         for index, side in entry["sides"].items():
+            if not isinstance(side, dict):
+                raise ValueError(f"side entry {index} is not an object")
             sides[int(index)] = side
         packed = PackedChannels(str(entry["model"]), layout, block, sides)
         return SnapshotGroup(str(entry["template"]), names, wildcards, packed)
