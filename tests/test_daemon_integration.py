@@ -25,8 +25,9 @@ import pytest
 
 from conftest import ROOT
 from support.broker import Mosquitto, Subscriber, publish_lines, publish_one, wait_until
-from zeroline.channel import Channel
+from zeroline.channel import unpack_channels
 from zeroline.config import load_config
+from zeroline.state import SNAPSHOT_NAME, StateStore
 
 pytestmark = pytest.mark.service
 
@@ -205,10 +206,11 @@ def assert_matches_replay(seen: dict[float, list[dict]], reference: list[dict]) 
 
 def final_coefficients(config: Path, channel: str) -> np.ndarray:
     """Coefficients of `channel` from the daemon's snapshot (written at SIGTERM)."""
-    snapshot = json.loads((config.parent / "state" / "snapshot.json").read_text())
-    model = Channel(load_config(config).channels[0], channel)
-    model.load_state(snapshot["channels"][channel]["state"])
-    return model.estimator.coefficients
+    snapshot = StateStore(config.parent / "state").load_snapshot()
+    assert snapshot is not None
+    [group] = snapshot.groups
+    models = unpack_channels(load_config(config).channels[0], group.names, group.packed)
+    return next(m for m in models if m.name == channel).estimator.coefficients
 
 
 class TestRoundTrip:
@@ -308,7 +310,7 @@ class TestRestarts:
         time.sleep(0.2)
         data = rows()
         publish_lines(broker, "site/a/gas", payload_lines(data[:100]))
-        snapshot = tmp_path / "state" / "snapshot.json"
+        snapshot = tmp_path / "state" / SNAPSHOT_NAME
         assert wait_until(snapshot.exists, 10)
         publish_lines(broker, "site/a/gas", payload_lines(data[100:200]))
         assert subscriber.wait_count("/a-gas/corrected", 130, 20)

@@ -16,7 +16,7 @@ from zeroline.channel import Channel, Sample
 from zeroline.config import Config, parse_config
 from zeroline.mqtt import Message
 from zeroline.service import Service
-from zeroline.state import StateStore
+from zeroline.state import LEGACY_SNAPSHOT_NAME, SNAPSHOT_NAME, StateStore
 
 T0 = 1_780_000_000.0  # a fixed instant; arrival times are set to match
 
@@ -266,7 +266,7 @@ class TestState:
         self.feed(broker, rows[:40])
         assert first.wait_idle(5)
         first.stop()
-        assert (state_dir / "snapshot.json").exists()
+        assert (state_dir / SNAPSHOT_NAME).exists()
         broker2 = FakeBroker()
         second = start(config, broker2, state_dir)
         self.feed(broker2, rows[40:])
@@ -275,7 +275,7 @@ class TestState:
         for t, v, _ in rows:
             direct.process(Sample(t, v))
         got = second.table.channels["a-gas"].estimator.coefficients
-        np.testing.assert_allclose(got, direct.estimator.coefficients, rtol=0, atol=1e-12)
+        assert np.array_equal(got, direct.estimator.coefficients)  # bit for bit
         second.stop()
 
     def test_crash_restores_from_snapshot_plus_journal(self, state_dir: Path) -> None:
@@ -299,6 +299,47 @@ class TestState:
         got = second.table.channels["a-gas"].estimator.coefficients
         np.testing.assert_allclose(got, direct.estimator.coefficients, rtol=0, atol=1e-12)
         first._stop.set()
+        second.stop()
+
+    def test_a_json_snapshot_of_the_previous_version_is_upgraded(self, state_dir: Path) -> None:
+        """A daemon upgraded in the field finds the version-1 `snapshot.json` (and its
+        journal): its channels continue where they were, the next snapshot is binary and
+        the JSON file is gone; a restart from that continues as well."""
+        config = parse_config(config_text(state_dir))
+        rows = readings(90)
+        old = Channel(config.channels[0], "a-gas")
+        for t, v, _ in rows[:30]:
+            old.process(Sample(t, v))
+        state_dir.mkdir(parents=True)
+        document = {
+            "format": "zeroline-snapshot",
+            "version": 1,
+            "journal_seq": 0,
+            "saved_at": T0,
+            "latest_inputs": {},
+            "channels": {
+                "a-gas": {"template": "{1}-gas", "wildcards": ["a"], "state": old.to_state()}
+            },
+        }
+        (state_dir / LEGACY_SNAPSHOT_NAME).write_text(json.dumps(document))
+        broker = FakeBroker()
+        first = start(config, broker, state_dir)
+        assert first.table.channels["a-gas"].last_time == rows[29][0]
+        self.feed(broker, rows[30:60])
+        assert first.wait_idle(5)
+        first.stop()
+        assert (state_dir / SNAPSHOT_NAME).exists()
+        assert not (state_dir / LEGACY_SNAPSHOT_NAME).exists()
+        broker2 = FakeBroker()
+        second = start(config, broker2, state_dir)
+        self.feed(broker2, rows[60:])
+        assert second.wait_idle(5)
+        direct = Channel(config.channels[0], "a-gas")
+        direct.load_state(json.loads(json.dumps(old.to_state())))
+        for t, v, _ in rows[30:]:
+            direct.process(Sample(t, v))
+        got = second.table.channels["a-gas"].estimator.coefficients
+        assert np.array_equal(got, direct.estimator.coefficients)
         second.stop()
 
     def test_changed_model_starts_fresh_after_restart(
@@ -343,6 +384,26 @@ class TestReload:
         assert service.wait_idle(5, lambda: service._reload is None)
         assert service.table.channels["a-gas"].last_time == T0  # kept
         assert service.table.channels["a-ph"].last_time == -math.inf  # fresh
+        service.stop()
+
+    def test_reload_applies_new_alert_settings_to_kept_models(self, state_dir: Path) -> None:
+        """Alert settings are not part of the model: a kept channel keeps its estimator
+        (bit for bit) and takes the new limits, a new rule included."""
+        text = config_text(state_dir, extra="alerts: {drift_limit: 5.0}")
+        broker = FakeBroker()
+        service = start(parse_config(text), broker, state_dir)
+        for t, v, _ in readings(30):
+            broker.deliver("site/a/gas", reading_payload(t, v))
+        assert service.wait_idle(5)
+        before = service.table.channels["a-gas"].estimator.coefficients
+        changed = text.replace("{drift_limit: 5.0}", "{drift_limit: 0.5, rate_limit: 1/d}")
+        service.request_reload(parse_config(changed))
+        assert service.wait_idle(5, lambda: service._reload is None)
+        kept = service.table.channels["a-gas"]
+        assert np.array_equal(kept.estimator.coefficients, before)
+        rules = kept.alerts.book.rules
+        assert rules["drift_limit"].limit == 0.5  # type: ignore[attr-defined]
+        assert "rate_limit" in rules
         service.stop()
 
 

@@ -10,7 +10,7 @@ rules' states, so the channel snapshot can carry it across a restart.
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from typing import Any, TypeVar
 
 from zeroline.alert_rules import (
@@ -28,6 +28,18 @@ from zeroline.alerts import RULE_NAMES, AlertEvent
 from zeroline.errors import ConfigError
 
 RuleT = TypeVar("RuleT", bound=AlertRule)
+
+
+#: The typed handle `_resolve_handles` sets for each rule (`blank_copy` re-points them).
+_HANDLE_OF = {
+    DriftLimitRule.name: "_drift",
+    RateLimitRule.name: "_rate",
+    ForecastRule.name: "_forecast",
+    ResidualChangeRule.name: "_residual",
+    CheckFailureRule.name: "_checks",
+    CorrectionCapRule.name: "_correction",
+    ModelHealthRule.name: "_health",
+}
 
 
 class AlertBook:
@@ -52,6 +64,9 @@ class AlertBook:
                 raise ConfigError(f"alert rule {rule.name} is given twice for channel {channel!r}")
             by_name[rule.name] = rule
         self.rules = {name: by_name[name] for name in RULE_NAMES if name in by_name}
+        self._resolve_handles()
+
+    def _resolve_handles(self) -> None:
         # Typed handles, resolved once, so `observe` routes without looking anything up.
         self._drift = self._typed(DriftLimitRule)
         self._rate = self._typed(RateLimitRule)
@@ -147,6 +162,45 @@ class AlertBook:
     def to_state(self) -> dict[str, Any]:
         """The book as JSON-able values (settings, learned state, active events)."""
         return {"channel": self.channel, "rules": [r.to_state() for r in self.rules.values()]}
+
+    def blank_copy(self, channel: str) -> AlertBook:
+        """The same rules for `channel`, all clear (cheaper than building the rules)."""
+        new = object.__new__(AlertBook)
+        state = new.__dict__
+        state.update(self.__dict__)
+        new.channel = channel
+        rules = {name: rule.blank_copy(channel) for name, rule in self.rules.items()}
+        new.rules = rules
+        for name in rules:  # point the typed handles at the copies
+            state[_HANDLE_OF[name]] = rules[name]
+        return new
+
+    def packed_layout(self) -> list[tuple[str, int]]:
+        """Fields (name, number of float64 values) of `pack`, in order."""
+        return [(f"alerts.{name}", rule.PACKED_WIDTH) for name, rule in self.rules.items()]
+
+    def pack(self) -> list[float]:
+        """Every rule's learned state as float64 values, in `packed_layout` order."""
+        values: list[float] = []
+        for rule in self.rules.values():
+            values += rule.pack()
+        return values
+
+    def active_json(self) -> dict[str, Any] | None:
+        """The active events as JSON (they hold free text), or None when all are clear."""
+        active = {name: r.active.to_json() for name, r in self.rules.items() if r.active}
+        return active or None
+
+    def unpack(self, values: Sequence[float], active: dict[str, Any] | None) -> None:
+        """Restore `pack`'s values and `active_json`'s events."""
+        start = 0
+        for rule in self.rules.values():
+            end = start + rule.PACKED_WIDTH
+            rule.unpack(values[start:end])
+            start = end
+        for name, event in (active or {}).items():
+            if name in self.rules:  # a rule since removed from the config is dropped
+                self.rules[name]._active = AlertEvent.from_json(event)
 
     @classmethod
     def from_state(cls, state: dict[str, Any]) -> AlertBook:

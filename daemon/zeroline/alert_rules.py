@@ -28,7 +28,7 @@ restart emits the same events as an uninterrupted one.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Sequence
 from statistics import NormalDist
 from typing import Any, ClassVar
 
@@ -129,6 +129,32 @@ class AlertRule:
             "active": None if self._active is None else self._active.to_json(),
         }
 
+    #: Number of float64 values of `pack` (the learned state; the active event, which holds
+    #: free text, travels as JSON beside them: `AlertEvent.to_json`).
+    PACKED_WIDTH: ClassVar[int]
+
+    def pack(self) -> Sequence[float]:
+        """The learned state as float64 values; settings come from the config."""
+        raise NotImplementedError
+
+    def unpack(self, values: Sequence[float]) -> None:
+        """Restore the learned state written by `pack` (the active event is set apart)."""
+        raise NotImplementedError
+
+    def blank_copy(self, channel: str) -> AlertRule:
+        """The same settings for `channel`, clear and never fed: much cheaper than the
+        constructor, so a channel template builds its rules once and copies them."""
+        new = object.__new__(type(self))
+        new.__dict__.update(self.__dict__)
+        new.channel = channel
+        new._active = None
+        new._blank_learned()
+        return new
+
+    def _blank_learned(self) -> None:
+        """Give a copy its own, empty learned state (called by `blank_copy`)."""
+        raise NotImplementedError
+
     @classmethod
     def from_state(cls, state: dict[str, Any]) -> AlertRule:
         """Rebuild the rule named in `state` (any rule class can be asked)."""
@@ -157,6 +183,17 @@ class _LatchedRule(AlertRule):
 
     def _load(self, learned: dict[str, Any]) -> None:
         self._latch = Latch.from_state(learned)
+
+    PACKED_WIDTH = len(Latch.PACKED)
+
+    def pack(self) -> Sequence[float]:
+        return self._latch.pack()
+
+    def unpack(self, values: Sequence[float]) -> None:
+        self._latch.unpack(values)
+
+    def _blank_learned(self) -> None:
+        self._latch = self._latch.blank_copy()
 
 
 class DriftLimitRule(_LatchedRule):
@@ -322,6 +359,21 @@ class ForecastRule(_LatchedRule):
         self._latch = Latch.from_state(learned["latch"])
         self._last_evaluated = learned["last_evaluated"]
 
+    PACKED_WIDTH = len(Latch.PACKED) + 1
+
+    def pack(self) -> Sequence[float]:
+        last = self._last_evaluated
+        return (*self._latch.pack(), math.nan if last is None else last)
+
+    def unpack(self, values: Sequence[float]) -> None:
+        self._latch.unpack(values[:-1])
+        last = values[-1]
+        self._last_evaluated = None if math.isnan(last) else last
+
+    def _blank_learned(self) -> None:
+        self._latch = self._latch.blank_copy()
+        self._last_evaluated = None
+
     def observe(self, time: float, predict: Predictor) -> list[AlertEvent]:
         """Evaluate `predict` on this rule's grid of future times and feed the result."""
         if self._last_evaluated is not None and time - self._last_evaluated < self.min_interval:
@@ -409,6 +461,20 @@ class ResidualChangeRule(AlertRule):
         self._cusum = TabularCusum.from_state(learned["cusum"])
         self._calm = int(learned["calm"])
 
+    PACKED_WIDTH = 3
+
+    def pack(self) -> Sequence[float]:
+        return (*self._cusum.pack(), float(self._calm))
+
+    def unpack(self, values: Sequence[float]) -> None:
+        upper, lower, calm = values
+        self._cusum.unpack((upper, lower))
+        self._calm = int(calm)
+
+    def _blank_learned(self) -> None:
+        self._cusum = self._cusum.blank_copy()
+        self._calm = 0
+
     def _forget(self) -> None:
         self._cusum.reset()
         self._calm = 0
@@ -495,6 +561,17 @@ class CheckFailureRule(AlertRule):
 
     def _load(self, learned: dict[str, Any]) -> None:
         self._run = int(learned["run"])
+
+    PACKED_WIDTH = 1
+
+    def pack(self) -> Sequence[float]:
+        return (float(self._run),)
+
+    def unpack(self, values: Sequence[float]) -> None:
+        self._run = int(values[0])
+
+    def _blank_learned(self) -> None:
+        self._run = 0
 
     def _forget(self) -> None:
         self._run = 0

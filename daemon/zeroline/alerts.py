@@ -33,6 +33,7 @@ The rules themselves live in `zeroline.alert_rules`, the per-channel `AlertBook`
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any, Literal
 
@@ -232,6 +233,32 @@ class Latch:
             "last_time": self._last_time,
         }
 
+    #: Values of `pack`, in order (None is stored as NaN).
+    PACKED = ("raised", "pending_since", "last_time")
+
+    def pack(self) -> tuple[float, float, float]:
+        """The learned state as float64 values (`PACKED`); settings come from the config."""
+        pending, last = self._pending_since, self._last_time
+        return (
+            1.0 if self._raised else 0.0,
+            math.nan if pending is None else pending,
+            math.nan if last is None else last,
+        )
+
+    def unpack(self, values: Sequence[float]) -> None:
+        """Restore the learned state written by `pack`."""
+        raised, pending, last = values
+        self._raised = raised == 1.0
+        self._pending_since = None if math.isnan(pending) else pending
+        self._last_time = None if math.isnan(last) else last
+
+    def blank_copy(self) -> Latch:
+        """The same settings, cleared and never fed (cheaper than the constructor)."""
+        new = object.__new__(Latch)
+        new.__dict__.update(self.__dict__)
+        new._raised, new._pending_since, new._last_time = False, None, None
+        return new
+
     @classmethod
     def from_state(cls, state: dict[str, Any]) -> Latch:
         """Rebuild a latch from `to_state` output."""
@@ -315,6 +342,20 @@ class TabularCusum:
     def to_state(self) -> dict[str, Any]:
         """Settings and learned state as JSON-able values."""
         return {"k": self.k, "h": self.h, "upper": self._upper, "lower": self._lower}
+
+    def pack(self) -> tuple[float, float]:
+        """C⁺ and C⁻ as float64 values (k and h come from the config)."""
+        return (self._upper, self._lower)
+
+    def unpack(self, values: Sequence[float]) -> None:
+        self._upper, self._lower = values
+
+    def blank_copy(self) -> TabularCusum:
+        """The same k and h, both sides at zero."""
+        new = object.__new__(TabularCusum)
+        new.__dict__.update(self.__dict__)
+        new._upper = new._lower = 0.0
+        return new
 
     @classmethod
     def from_state(cls, state: dict[str, Any]) -> TabularCusum:

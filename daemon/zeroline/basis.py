@@ -326,6 +326,18 @@ class Expression:
 # --- the basis as a whole -------------------------------------------------------------------
 
 
+def _at_epoch(term: Periodic | Step, epoch: float) -> Periodic | Step:
+    """`replace(term, epoch=epoch)` without running the constructor again (its other fields
+    were checked when it was made): a restart binds every restored channel's basis."""
+    fields = getattr(term, "__dict__", None)
+    if fields is None:  # a slotted class: the general way
+        return replace(term, epoch=epoch)
+    bound = object.__new__(type(term))
+    bound.__dict__.update(fields)
+    object.__setattr__(bound, "epoch", epoch)
+    return bound
+
+
 @dataclass(frozen=True)
 class Basis:
     """An ordered list of terms; its columns are the concatenation of theirs."""
@@ -361,7 +373,7 @@ class Basis:
     def with_epoch(self, epoch: float) -> Basis:
         """The same basis with time measured from `epoch` (UTC seconds)."""
         bound = tuple(
-            replace(term, epoch=epoch) if isinstance(term, (Periodic, Step)) else term
+            _at_epoch(term, epoch) if isinstance(term, (Periodic, Step)) else term
             for term in self.terms
         )
         return Basis(bound, epoch)

@@ -23,10 +23,10 @@ what makes a replay a faithful rehearsal of the daemon.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from statistics import NormalDist
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 import numpy.typing as npt
@@ -37,8 +37,16 @@ from zeroline.basis import Basis
 from zeroline.channel_alerts import ChannelAlerts
 from zeroline.config import ChannelConfig
 from zeroline.errors import InputError
-from zeroline.estimator import RecursiveEstimator
+from zeroline.estimator import RecursiveEstimator, pack_estimators, unpack_estimators
+from zeroline.estimator import packed_layout as estimator_layout
 from zeroline.inputs import InputCache
+from zeroline.state_layout import (
+    PackedChannels,
+    collector_paused,
+    number,
+    optional,
+    rearranged,
+)
 
 Array = npt.NDArray[np.float64]
 STATE_VERSION = 1
@@ -191,15 +199,22 @@ class Channel:
     """One sensor stream's model: feed it readings with `process`, actions with `control`."""
 
     def __init__(self, config: ChannelConfig, name: str | None = None) -> None:
+        # What is the same for every channel of a template (sizes, a pristine estimator, the
+        # basis bound to the config's epoch) is made once and shared: a daemon restoring
+        # 10,000 channels makes 10,000 of these (see `_TemplateParts`).
+        parts = _TemplateParts.of(config)
+        self._parts = parts
         self.config = config
         self.name = name or config.name
         self.learn = config.learn
-        self._offset_size = config.basis.size
-        self._gain_size = config.gain.size if config.gain is not None else 0
+        self._offset_size = parts.offset_size
+        self._gain_size = parts.gain_size
         self._min_samples = config.learn.min_samples or 2 * self.n_terms
-        self._estimator = self._new_estimator()
+        if parts.estimator is None:  # the first channel of the template: the long way
+            parts.estimator = self._new_estimator()
+        self._estimator = parts.estimator.blank_copy()
         self._squared = SquaredInformation(self.n_terms, config.memory.half_life)
-        self._inputs = InputCache({i.name: i.max_age for i in config.inputs.values()})
+        self._inputs = InputCache(parts.max_ages)
         self._epoch: float | None = config.epoch
         self._basis: Basis | None = None
         self._gain: Basis | None = None
@@ -353,6 +368,10 @@ class Channel:
 
     def _bind(self, epoch: float) -> None:
         self._epoch = epoch
+        parts = self._parts
+        if epoch == parts.epoch:  # the config's own epoch: bound once per template
+            self._basis, self._gain = parts.basis, parts.gain
+            return
         self._basis = self.config.basis.with_epoch(epoch)
         self._gain = self.config.gain.with_epoch(epoch) if self.config.gain else None
 
@@ -646,6 +665,236 @@ class Channel:
         self._input_means = {k: float(v) for k, v in means.items()}
         self._means_time = state["means_time"]
         self._squared = SquaredInformation.from_state(state["squared"])
+
+    def _pack_scalars(self, input_names: tuple[str, ...]) -> list[float]:
+        """The channel's own numbers, its inputs, input means and alert states as float64
+        values in `PackedChannels` layout order (None is NaN)."""
+        values = [
+            number(self._epoch),
+            self._last_time,
+            self._last_useful,
+            number(self._means_time),
+            number(self._condition),
+            float(self._since_condition),
+            number(self.last_drift),
+        ]
+        values += self._inputs.pack(input_names)
+        stage1, means = self._input_stage1, self._input_means
+        for name in input_names:
+            values += (1.0, stage1[name], means[name]) if name in means else _UNKNOWN_MEAN
+        values += self.alerts.pack()
+        return values
+
+    def _pack_side(self) -> dict[str, Any] | None:
+        """What does not fit fixed float64 fields (active alert events, a window's queue)."""
+        side: dict[str, Any] = {}
+        active = self.alerts.active_json()
+        if active is not None:
+            side["alerts"] = active
+        return side or None
+
+    def restored_copy(
+        self,
+        name: str,
+        values: list[float],
+        squared: SquaredInformation,
+        estimator: RecursiveEstimator,
+        side: Mapping[str, Any] | None,
+    ) -> Channel:
+        """A channel named `name` with this (never fed) one's settings and the state that
+        `_pack_scalars` / `_pack_side` wrote, with its unpacked estimator and squared
+        information. Copying the settings is what makes restoring 10,000 channels fast;
+        every attribute that holds learned state is set anew in `_unpack`."""
+        channel = object.__new__(Channel)
+        channel.__dict__.update(self.__dict__)
+        channel.name = name
+        channel.alerts = self.alerts.blank_copy(name)
+        channel._inputs = self._inputs.blank_copy()
+        channel._unpack(values, squared, estimator, side)
+        return channel
+
+    def _unpack(
+        self,
+        values: list[float],
+        squared: SquaredInformation,
+        estimator: RecursiveEstimator,
+        side: Mapping[str, Any] | None,
+    ) -> None:
+        """Restore what `_pack_scalars` / `_pack_side` wrote, with the unpacked parts."""
+        parts = self._parts
+        epoch, last_time, last_useful, means_time, condition, since, last_drift = values[:7]
+        self._estimator = estimator
+        self._squared = squared
+        if math.isnan(epoch):
+            self._epoch, self._basis, self._gain = None, None, None
+        else:
+            self._bind(epoch)
+        self._last_time, self._last_useful = last_time, last_useful
+        self._means_time = optional(means_time)
+        self._condition = optional(condition)
+        self._since_condition = int(since)
+        self.last_drift = optional(last_drift)
+        names = parts.input_names
+        start = 7 + 3 * len(names)
+        self._inputs.unpack(names, values[7:start])
+        stage1: dict[str, float] = {}
+        means: dict[str, float] = {}
+        for name in parts.sorted_names:  # the insertion order `_track_means` gives
+            index = start + 3 * parts.input_index[name]
+            if values[index] == 1.0:
+                stage1[name] = values[index + 1]
+                means[name] = values[index + 2]
+        self._input_stage1, self._input_means = stage1, means
+        self.alerts.unpack(values[start + 3 * len(names) :], (side or {}).get("alerts"))
+
+
+_UNKNOWN_MEAN = (0.0, math.nan, math.nan)
+
+
+class _TemplateParts:
+    """What every channel of one template shares: sizes, the inputs' names and ages, a
+    pristine estimator to copy, the basis bound to the config's epoch, the packed layout.
+
+    Kept per config object (by identity, with the config held so its id cannot be reused),
+    at most `_MAX` of them (a daemon reloading its config makes new config objects)."""
+
+    _known: ClassVar[dict[int, _TemplateParts]] = {}
+    _MAX: ClassVar[int] = 256
+
+    def __init__(self, config: ChannelConfig) -> None:
+        self.config = config
+        self.offset_size = config.basis.size
+        self.gain_size = config.gain.size if config.gain is not None else 0
+        self.max_ages = {i.name: i.max_age for i in config.inputs.values()}
+        self.input_names = tuple(self.max_ages)
+        self.sorted_names = tuple(sorted(self.input_names))
+        self.input_index = {name: i for i, name in enumerate(self.input_names)}
+        self.epoch = config.epoch
+        self.basis = None if config.epoch is None else config.basis.with_epoch(config.epoch)
+        self.gain = (
+            None
+            if config.epoch is None or config.gain is None
+            else config.gain.with_epoch(config.epoch)
+        )
+        #: A never-fed estimator that channels copy (set by the first `Channel`).
+        self.estimator: RecursiveEstimator | None = None
+        self.alerts = ChannelAlerts("", config.alerts, cap=config.cap)
+        self._layout: list[tuple[str, int]] | None = None
+        self._blank: Channel | None = None
+
+    def blank_channel(self) -> Channel:
+        """A channel of this template that is never fed: restored ones copy its settings."""
+        if self._blank is None:
+            self._blank = Channel(self.config, "")
+        return self._blank
+
+    @classmethod
+    def of(cls, config: ChannelConfig) -> _TemplateParts:
+        parts = cls._known.get(id(config))
+        if parts is None or parts.config is not config:
+            parts = cls(config)
+            if len(cls._known) >= cls._MAX:
+                cls._known.pop(next(iter(cls._known)))
+            cls._known[id(config)] = parts
+        return parts
+
+    @property
+    def layout(self) -> list[tuple[str, int]]:
+        """The packed fields (name, number of float64 values) of a channel, in order."""
+        if self._layout is None:
+            n = self.offset_size + self.gain_size
+            self._layout = [
+                ("channel", 7),
+                *((f"inputs.{name}", 3) for name in self.input_names),
+                *((f"means.{name}", 3) for name in self.input_names),
+                *self.alerts.packed_layout(),
+                ("squared", 1 + n * (n + 1) // 2),
+                *estimator_layout(n),
+            ]
+        return self._layout
+
+    @property
+    def scalar_width(self) -> int:
+        """Values of `Channel._pack_scalars`: the layout before "squared"."""
+        return 7 + 6 * len(self.input_names) + sum(w for _, w in self.alerts.packed_layout())
+
+
+def pack_channels(channels: Sequence[Channel]) -> PackedChannels:
+    """Pack channels that share one config (one template); nothing in them changes."""
+    with collector_paused():
+        return _packed(channels)
+
+
+def _packed(channels: Sequence[Channel]) -> PackedChannels:
+    config = channels[0].config
+    parts = _TemplateParts.of(config)
+    if any(channel.config is not config for channel in channels):
+        raise ValueError("pack_channels takes the channels of one config")
+    names = parts.input_names
+    scalars = np.array([c._pack_scalars(names) for c in channels], dtype=np.float64)
+    n = parts.offset_size + parts.gain_size
+    upper = np.triu_indices(n)
+    squared = np.stack([c._squared._matrix for c in channels])[:, upper[0], upper[1]]
+    squared_time = np.array([number(c._squared._time) for c in channels], dtype=np.float64)
+    estimators, estimator_sides = pack_estimators([c._estimator for c in channels])
+    rows = np.hstack(
+        [scalars.reshape(len(channels), -1), squared_time[:, None], squared, estimators]
+    )
+    sides = []
+    for channel, window in zip(channels, estimator_sides, strict=True):
+        side = channel._pack_side()
+        if window is not None:
+            side = {**(side or {}), "window": window}
+        sides.append(side)
+    return PackedChannels(config.model_key(), parts.layout, rows, sides)
+
+
+def unpack_channels(
+    config: ChannelConfig, names: Sequence[str], packed: PackedChannels
+) -> list[Channel]:
+    """Channels of `config` named `names` with the state of `packed`'s rows.
+
+    InputError if the state was saved for another model. Alert rules or inputs that were
+    added to or removed from the config since are matched by name: new ones start clear.
+    """
+    with collector_paused():
+        return _unpacked(config, names, packed)
+
+
+def _unpacked(config: ChannelConfig, names: Sequence[str], packed: PackedChannels) -> list[Channel]:
+    if packed.model != config.model_key():
+        raise InputError("state was saved for a different model")
+    parts = _TemplateParts.of(config)
+    rows = np.asarray(packed.rows, dtype=np.float64)
+    if rows.ndim != 2 or rows.shape[0] != len(names) or len(packed.sides) != len(names):
+        raise InputError(f"packed state holds {rows.shape} values for {len(names)} channels")
+    layout = [(str(name), int(size)) for name, size in packed.layout]
+    if layout != parts.layout:  # alert rules or inputs changed in the config
+        blank_row = pack_channels([parts.blank_channel()]).rows[0]
+        rows = rearranged(rows, layout, parts.layout, blank_row)
+    width = parts.scalar_width
+    scalars = rows[:, :width].tolist()
+    n = parts.offset_size + parts.gain_size
+    upper = np.triu_indices(n)
+    squared_time = rows[:, width].tolist()
+    squared = np.zeros((len(names), n, n))
+    squared[:, upper[0], upper[1]] = rows[:, width + 1 : width + 1 + len(upper[0])]
+    squared[:, upper[1], upper[0]] = rows[:, width + 1 : width + 1 + len(upper[0])]
+    sides = [side or {} for side in packed.sides]
+    blank = parts.blank_channel()  # also makes parts.estimator
+    assert parts.estimator is not None
+    estimators = unpack_estimators(
+        parts.estimator, rows[:, width + 1 + len(upper[0]) :], [s.get("window") for s in sides]
+    )
+    half_life = config.memory.half_life
+    channels = []
+    for i, name in enumerate(names):
+        information = object.__new__(SquaredInformation)
+        information.half_life = half_life
+        information._matrix = squared[i]
+        information._time = optional(squared_time[i])
+        channels.append(blank.restored_copy(name, scalars[i], information, estimators[i], sides[i]))
+    return channels
 
 
 def _standardised(innovation: Any) -> float | None:

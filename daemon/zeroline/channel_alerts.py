@@ -104,11 +104,30 @@ def build_rules(channel: str, config: AlertConfig, *, cap: float | None) -> list
     return rules
 
 
+#: Rules built once per alert config (and cap), copied for each channel: building and
+#: validating them costs more than the rest of a new channel. Keyed by identity, with the
+#: config kept alive beside its book so an id cannot be reused; bounded for many reloads.
+_PROTOTYPES: dict[tuple[int, float | None], tuple[AlertConfig, AlertBook]] = {}
+_MAX_PROTOTYPES = 256
+
+
+def _prototype_book(config: AlertConfig, cap: float | None) -> AlertBook:
+    key = (id(config), cap)
+    known = _PROTOTYPES.get(key)
+    if known is not None and known[0] is config:
+        return known[1]
+    book = AlertBook("", build_rules("", config, cap=cap))
+    if len(_PROTOTYPES) >= _MAX_PROTOTYPES:
+        _PROTOTYPES.pop(next(iter(_PROTOTYPES)))
+    _PROTOTYPES[key] = (config, book)
+    return book
+
+
 class ChannelAlerts:
     """A channel's alert book plus the glue from corrected readings to rule inputs."""
 
     def __init__(self, channel: str, config: AlertConfig, *, cap: float | None) -> None:
-        self.book = AlertBook(channel, build_rules(channel, config, cap=cap))
+        self.book = _prototype_book(config, cap).blank_copy(channel)
 
     def observe(
         self,
@@ -149,6 +168,25 @@ class ChannelAlerts:
 
     def to_state(self) -> dict[str, Any]:
         return self.book.to_state()
+
+    def blank_copy(self, channel: str) -> ChannelAlerts:
+        """The same rules for `channel`, all clear (see `AlertBook.blank_copy`)."""
+        new = object.__new__(ChannelAlerts)
+        new.__dict__.update(self.__dict__)
+        new.book = self.book.blank_copy(channel)
+        return new
+
+    def packed_layout(self) -> list[tuple[str, int]]:
+        return self.book.packed_layout()
+
+    def pack(self) -> list[float]:
+        return self.book.pack()
+
+    def active_json(self) -> dict[str, Any] | None:
+        return self.book.active_json()
+
+    def unpack(self, values: list[float], active: dict[str, Any] | None) -> None:
+        self.book.unpack(values, active)
 
     def load_state(self, state: dict[str, Any]) -> None:
         self.book = AlertBook.from_state(state)

@@ -90,6 +90,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy.linalg import lapack
 
 from zeroline.errors import InputError
+from zeroline.state_layout import number, optional
 
 if TYPE_CHECKING:  # the replay module imports this one; at run time see __getattr__ below
     from zeroline.estimator_replay import ReplayResult, replay_batch
@@ -682,6 +683,66 @@ class RecursiveEstimator:
             ) from None
         return est
 
+    # ------------------------------------------------- cheap copies, packed state
+    def blank_copy(self) -> RecursiveEstimator:
+        """A new estimator with this one's settings and prior and none of its samples.
+
+        Much cheaper than the constructor (no validation, shared read-only settings): a
+        channel template keeps one pristine estimator and copies it for every channel.
+        Arrays that any method changes in place are the copy's own.
+        """
+        p = self.n_terms
+        new = object.__new__(RecursiveEstimator)
+        new.__dict__.update(self.__dict__)
+        # Arrays that methods change in place are the copy's own (`shift` changes the
+        # prior rows and centre, LAPACK the factor and the scratch row).
+        new._prior_rows = np.array(self._prior_rows, order="F")
+        new._prior_center = np.array(self._prior_center)
+        new._row = np.zeros((1, p + 1), order="F")
+        new._row_x = new._row[0, :p]
+        if self._time is None and self.window is None:  # never fed: the factor is the prior's
+            new._factor = np.array(self._f, order="F")
+        else:
+            new._time = None
+            new.reset()
+        return new
+
+    def _window_state(self) -> dict[str, Any]:
+        """The exact window's queue, which has no fixed size: a JSON-able side entry."""
+        return {
+            "back": self._back.tolist(),
+            "back_rows": [[t, w, *row.tolist()] for t, w, row in self._back_rows],
+            "front_times": self._front_times.tolist(),
+            "front_weights": self._front_weights.tolist(),
+            "front_rows": self._front_rows.tolist(),
+            "head": self._head,
+            "checkpoints": [c.tolist() for c in self._checkpoints],
+            # The suffixes of the head's block are kept as computed: rebuilding them would
+            # need that block's rows, which `_front_suffix` has consumed (LAPACK overwrites
+            # the rows it absorbs).
+            "inner": [c.tolist() for c in self._inner],
+            "inner_block": self._inner_block,
+        }
+
+    def _load_window_state(self, state: dict[str, Any]) -> None:
+        p1 = self.n_terms + 1
+        self._back = np.array(state["back"], dtype=np.float64, order="F").reshape(p1, p1)
+        self._back_rows = [
+            (float(r[0]), float(r[1]), np.array(r[2:], dtype=np.float64))
+            for r in state["back_rows"]
+        ]
+        self._front_times = np.array(state["front_times"], dtype=np.float64)
+        self._front_weights = np.array(state["front_weights"], dtype=np.float64)
+        self._front_rows = np.array(state["front_rows"], dtype=np.float64).reshape(-1, p1)
+        self._head = int(state["head"])
+        self._checkpoints = [
+            np.array(c, dtype=np.float64, order="F").reshape(p1, p1) for c in state["checkpoints"]
+        ]
+        self._inner = [
+            np.array(c, dtype=np.float64, order="F").reshape(p1, p1) for c in state["inner"]
+        ]
+        self._inner_block = int(state["inner_block"])
+
     def _window_rows(self) -> FloatArray:
         """Rows in the window as (time, weight, √w·x..., √w·y), oldest first."""
         p = self.n_terms
@@ -701,6 +762,128 @@ class RecursiveEstimator:
         self._factor = self._back.copy(order="F")
         self._count = float(np.count_nonzero(rows[:, 1] > 0))
         self._information = float(np.sum(rows[:, 1]))
+
+
+def packed_layout(n_terms: int) -> list[tuple[str, int]]:
+    """Fields (name, number of float64 values) of `pack_estimators`, in order."""
+    p = n_terms
+    return [
+        ("estimator.factor", (p + 1) * (p + 2) // 2),
+        ("estimator.clock", len(_CLOCK)),
+        ("estimator.prior_mean", p),
+        ("estimator.prior_column", p),
+        ("estimator.prior_center", p),
+        ("estimator.solution", p + 2),
+    ]
+
+
+#: The scalars of "estimator.clock"; None is stored as NaN (no time is NaN).
+_CLOCK = ("g", "g_time", "time", "prior_ref_weight", "prior_ref_time", "count", "information")
+
+
+def pack_estimators(
+    estimators: Sequence[RecursiveEstimator],
+) -> tuple[FloatArray, list[dict[str, Any] | None]]:
+    """Every estimator's learnt state as one row of float64 (`packed_layout`), plus a
+    JSON-able side entry for what has no fixed size (an exact window's queue).
+
+    The factor is stored as kept, F = g·G with g apart, so packing changes nothing and
+    the restored estimator continues bit for bit; so is the cached solution θ.
+    """
+    p = estimators[0].n_terms
+    upper = np.triu_indices(p + 1)
+    factors = np.stack([e._f for e in estimators])[:, upper[0], upper[1]]
+    clock = np.array(
+        [
+            (
+                e._g,
+                number(e._g_time),
+                number(e._time),
+                e._prior_ref_weight,
+                number(e._prior_ref_time),
+                e._count,
+                e._information,
+            )
+            for e in estimators
+        ],
+        dtype=np.float64,
+    ).reshape(len(estimators), len(_CLOCK))
+    missing = np.full(p, math.nan)
+    solved = [e._theta is not None for e in estimators]
+    solution = np.column_stack(
+        [
+            np.array(solved, dtype=np.float64),
+            [e._penalty if e._theta is not None else math.nan for e in estimators],
+            np.stack([missing if e._theta is None else e._theta for e in estimators]),
+        ]
+    )
+    block = np.hstack(
+        [
+            factors,
+            clock,
+            np.stack([e.prior_mean for e in estimators]),
+            np.stack([e._prior_rows[:, p] for e in estimators]),
+            np.stack([e._prior_center for e in estimators]),
+            solution,
+        ]
+    )
+    sides = [None if e.window is None else e._window_state() for e in estimators]
+    return block, sides
+
+
+def unpack_estimators(
+    prototype: RecursiveEstimator,
+    block: FloatArray,
+    sides: Sequence[dict[str, Any] | None],
+) -> list[RecursiveEstimator]:
+    """Estimators with `prototype`'s settings and the learnt state of `pack_estimators`'
+    rows; InputError if the rows cannot be such a state.
+
+    The arrays of all estimators are made at once, each estimator's being views of its
+    own part of them (Fortran-ordered where LAPACK works on them in place).
+    """
+    p = prototype.n_terms
+    n = block.shape[0] if block.ndim == 2 else 0
+    widths = [width for _, width in packed_layout(p)]
+    if block.ndim != 2 or block.shape[1] != sum(widths):
+        raise InputError(f"packed estimator rows need {sum(widths)} values at p = {p}")
+    parts = np.split(np.array(block, dtype=np.float64), np.cumsum(widths)[:-1], axis=1)
+    packed_factor, clock, prior_mean, prior_column, prior_center, solution = parts
+    if not np.all(np.isfinite(packed_factor)):
+        raise InputError("estimator state holds a non-finite factor")
+    upper = np.triu_indices(p + 1)
+    factors = np.zeros((n, p + 1, p + 1))  # each [i] is Fᵀ, so [i].T is F in Fortran order
+    factors[:, upper[1], upper[0]] = packed_factor
+    prior_rows = np.empty((n, p + 1, p))  # likewise transposed
+    prior_rows[:] = prototype._prior_rows.T
+    prior_rows[:, p, :] = prior_column
+    scratch = np.zeros((n, 1, p + 1))
+    valid = (solution[:, 0] == 1.0).tolist()
+    penalties = solution[:, 1].tolist()
+    shared = prototype.__dict__
+    result = []
+    for i, (g, g_time, time, ref_weight, ref_time, count, information) in enumerate(clock.tolist()):
+        est = object.__new__(RecursiveEstimator)
+        est.__dict__.update(shared)
+        est._prior_rows = prior_rows[i].T
+        est._prior_center = prior_center[i]
+        est._row = scratch[i]
+        est._row_x = scratch[i, 0, :p]
+        est.prior_mean = prior_mean[i]
+        est._time = optional(time)
+        est._factor = factors[i].T
+        est._g, est._g_time = g, optional(g_time)
+        est._prior_ref_weight, est._prior_ref_time = ref_weight, optional(ref_time)
+        est._count, est._information = count, information
+        if valid[i]:
+            est._theta, est._penalty = solution[i, 2:], penalties[i]
+        if est.window is not None:
+            side = sides[i]
+            if side is None:
+                raise InputError("a windowed estimator's state lacks its window rows")
+            est._load_window_state(side)
+        result.append(est)
+    return result
 
 
 def __getattr__(name: str) -> Any:

@@ -8,6 +8,8 @@ stamped later than the reading is not used for it either: the model must not see
 
 from __future__ import annotations
 
+import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -56,3 +58,28 @@ class InputCache:
             for name, (t, v) in state.items()
             if name in self.max_ages
         }
+
+    def blank_copy(self) -> InputCache:
+        """The same inputs, no values yet (the ages are shared: nothing changes them)."""
+        new = object.__new__(InputCache)
+        new.__dict__.update(self.__dict__)
+        new._latest = {}
+        return new
+
+    def pack(self, names: Sequence[str]) -> list[float]:
+        """(known, time, value) per name in `names` order, as float64 values (an unknown
+        input is (0, NaN, NaN))."""
+        values: list[float] = []
+        latest = self._latest
+        for name in names:
+            known = latest.get(name)
+            values += (0.0, math.nan, math.nan) if known is None else (1.0, known.time, known.value)
+        return values
+
+    def unpack(self, names: Sequence[str], values: Sequence[float]) -> None:
+        """Restore what `pack(names)` wrote."""
+        latest: dict[str, InputValue] = {}
+        for index, name in enumerate(names):
+            if values[3 * index] == 1.0 and name in self.max_ages:
+                latest[name] = InputValue(values[3 * index + 1], values[3 * index + 2])
+        self._latest = latest

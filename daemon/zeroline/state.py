@@ -2,38 +2,64 @@
 
 Why two files. A reading is acknowledged to the broker only once its effect on the model is
 on disk (see `zeroline.service`), so durability sits on the per-message path. Writing a full
-snapshot for every batch of acknowledgements costs O(channels) bytes each time (about 3 KB
-per channel): with a thousand channels that is megabytes per batch, far too much for a
-gateway's flash. Instead:
+snapshot for every batch of acknowledgements costs O(channels) bytes each time (about 840 B
+per channel at p = 6): with a thousand channels that is most of a megabyte per batch, far
+too much for a gateway's flash. Instead:
 
 - `journal.jsonl` gets one short JSON line per state-changing message (the decoded reading,
   input or control event, ~150 bytes), appended in batches with one `fsync` per batch. That
   is the commit point that allows the acknowledgement.
-- `snapshot.json` holds every channel's estimator, inputs and alert state as of journal
+- `snapshot.bin` holds every channel's estimator, inputs and alert state as of journal
   sequence number `journal_seq`. It is written every `state.snapshot_every`, on SIGTERM,
-  after a reload and when the journal grows long, atomically: write `snapshot.json.tmp`,
-  fsync, rename over `snapshot.json`, fsync the directory. After a snapshot the journal is
+  after a reload and when the journal grows long, atomically: write `snapshot.bin.tmp`,
+  fsync, rename over `snapshot.bin`, fsync the directory. After a snapshot the journal is
   emptied; if power fails between the two, the records up to `journal_seq` are skipped on
   replay because the snapshot already holds them.
+
+The snapshot file (version 2), all integers little-endian:
+
+    MAGIC (18 bytes: "zeroline-snapshot" and a newline)
+    version u32 | CRC-32 (zlib) of everything after this prefix u32 | header bytes u64 |
+    payload bytes u64
+    header: UTF-8 JSON, padded with spaces so the payload starts at a multiple of 8
+    payload: one block of float64 per group, `rows × width` values, row-major
+
+The header holds `format`, `version`, `journal_seq`, `saved_at`, `latest_inputs` and one
+entry per group of channels of one template: `template`, `model` (the config's model key),
+`layout` (field names and sizes, see `zeroline.state_layout`), `names`, `wildcards`, the
+block's `offset` and `rows` in the payload, and `sides` (channel index → JSON side entry,
+only for the few channels that have one). Numbers are stored as their float64 bytes, so a
+restored channel continues bit for bit, and the file itself costs little: for 10,000
+channels (8.4 MB) encoding and the durable write took ~25 ms, reading and checking ~10 ms
+(bench/snapshot.py; packing and rebuilding the channels is the rest).
 
 At start the daemon loads the snapshot and replays the journal records after it through the
 same code that processed them the first time (without publishing again), so the restored
 state equals the state before the crash, record for record.
 
-Damage is never fatal. A snapshot that is not valid JSON, not a zeroline snapshot or of an
-unknown version is renamed to `snapshot.json.corrupt-<UTC time>` with one clear log line
+Upgrade. A daemon of the JSON era left `snapshot.json` (version 1, every channel's state as
+JSON). When there is no `snapshot.bin` it is read as before, so an upgraded daemon keeps
+its models; the first binary snapshot then replaces it (the JSON file is removed).
+
+Damage is never fatal. A snapshot that is short, fails its CRC, is not a zeroline snapshot
+or of an unknown version is renamed to `<name>.corrupt-<UTC time>` with one clear log line
 and the daemon starts from empty models; a journal whose last line was cut off by a power
 cut ends at its last complete line; an unreadable line in the middle ends the replay there,
 again with a log line. Channels whose saved model no longer matches the config are the
 service's business (it starts them fresh and says so).
 
 >>> import tempfile
+>>> import numpy as np
+>>> from zeroline.state_layout import PackedChannels
 >>> with tempfile.TemporaryDirectory() as directory:
 ...     store = StateStore(directory)
 ...     store.append_journal([{"s": 1, "t": "r"}])
-...     size = store.save_snapshot({"a": '{"state": 1}'}, {"journal_seq": 1})
-...     store.load_snapshot()["channels"]["a"], list(store.read_journal(after=1))
-({'state': 1}, [])
+...     packed = PackedChannels("m", [("x", 2)], np.array([[1.5, -0.0]]), [None])
+...     group = SnapshotGroup("t", ["a"], [("a",)], packed)
+...     size = store.save_snapshot([group], {"journal_seq": 1})
+...     snapshot = store.load_snapshot()
+...     snapshot.groups[0].packed.rows.tolist(), list(store.read_journal(after=1))
+([[1.5, -0.0]], [])
 """
 
 from __future__ import annotations
@@ -43,19 +69,51 @@ import datetime as _dt
 import json
 import logging
 import os
+import struct
 import time
-from collections.abc import Iterator, Mapping
+import zlib
+from collections.abc import Iterator, Mapping, Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from zeroline.errors import InputError
+from zeroline.state_layout import PackedChannels, collector_paused
 
 _log = logging.getLogger(__name__)
 
 SNAPSHOT_FORMAT = "zeroline-snapshot"
-SNAPSHOT_VERSION = 1
-SNAPSHOT_NAME = "snapshot.json"
+SNAPSHOT_VERSION = 2
+SNAPSHOT_NAME = "snapshot.bin"
+#: The JSON snapshot of version 1, still read when there is no binary one (upgrades).
+LEGACY_SNAPSHOT_NAME = "snapshot.json"
+LEGACY_SNAPSHOT_VERSION = 1
 JOURNAL_NAME = "journal.jsonl"
+MAGIC = b"zeroline-snapshot\n"
+_PREFIX = struct.Struct("<IIQQ")  # version, CRC-32 of the rest, header bytes, payload bytes
+_FLOAT = np.dtype("<f8")
+
+
+@dataclass(frozen=True)
+class SnapshotGroup:
+    """Channels of one template in a snapshot: their names, wildcards and packed state."""
+
+    template: str
+    names: list[str]
+    wildcards: list[tuple[str, ...]]
+    packed: PackedChannels
+
+
+@dataclass(frozen=True)
+class Snapshot:
+    """A loaded snapshot: `meta` (journal_seq, saved_at, latest_inputs) and the groups;
+    `legacy_channels` holds the per-channel JSON entries of a version-1 snapshot."""
+
+    meta: dict[str, Any]
+    groups: list[SnapshotGroup] = field(default_factory=list)
+    legacy_channels: dict[str, Any] = field(default_factory=dict)
 
 
 class StateStore:
@@ -76,6 +134,7 @@ class StateStore:
                 "give a writable directory"
             )
         self.snapshot_path = self.directory / SNAPSHOT_NAME
+        self.legacy_snapshot_path = self.directory / LEGACY_SNAPSHOT_NAME
         self.journal_path = self.directory / JOURNAL_NAME
         # Unbuffered, so a failed write leaves nothing pending that could land later.
         self._journal = open(self.journal_path, "ab", buffering=0)  # noqa: SIM115 - kept open
@@ -83,61 +142,79 @@ class StateStore:
 
     # --- snapshot -------------------------------------------------------------------------
 
-    def save_snapshot(self, channels: Mapping[str, str], meta: Mapping[str, Any]) -> int:
-        """Write a snapshot atomically; `channels` maps names to ready JSON text. Returns
-        the bytes written. Raises OSError if the disk refuses (the caller logs and retries)."""
+    def save_snapshot(self, groups: Sequence[SnapshotGroup], meta: Mapping[str, Any]) -> int:
+        """Write a snapshot atomically (format in the module docstring). Returns the bytes
+        written. Raises OSError if the disk refuses (the caller logs and retries)."""
         started = time.perf_counter()
-        header = {"format": SNAPSHOT_FORMAT, "version": SNAPSHOT_VERSION, **meta}
-        head = json.dumps(header)[:-1]  # reopen the object to append the channels
-        body = ",".join(f"{json.dumps(name)}:{text}" for name, text in channels.items())
-        data = f'{head}, "channels": {{{body}}}}}\n'.encode()
+        data = encode_snapshot(groups, meta)
         temporary = self.snapshot_path.with_name(SNAPSHOT_NAME + ".tmp")
         with open(temporary, "wb") as handle:
-            handle.write(data)
+            for part in data:
+                handle.write(part)
             handle.flush()
             os.fsync(handle.fileno())
         os.replace(temporary, self.snapshot_path)
         _fsync_directory(self.directory)
+        # The binary snapshot is now the durable one; an old JSON one would only mislead
+        # (a later damaged snapshot.bin must not bring back a stale model).
+        with contextlib.suppress(FileNotFoundError):
+            self.legacy_snapshot_path.unlink()
         self.last_snapshot_s = time.perf_counter() - started
-        return len(data)
+        return sum(len(part) for part in data)
 
-    def load_snapshot(self) -> dict[str, Any] | None:
+    def load_snapshot(self) -> Snapshot | None:
         """The saved snapshot, or None if there is none or it had to be set aside."""
         try:
-            text = self.snapshot_path.read_bytes()
+            data = self.snapshot_path.read_bytes()
+        except FileNotFoundError:
+            return self._load_legacy()
+        except OSError as error:
+            self._set_aside(self.snapshot_path, f"cannot be read ({error.strerror})")
+            return None
+        try:
+            return decode_snapshot(data)
+        except SnapshotError as error:
+            self._set_aside(self.snapshot_path, str(error))
+            return None
+
+    def _load_legacy(self) -> Snapshot | None:
+        """A version-1 JSON snapshot (from before the binary format), if there is one."""
+        path = self.legacy_snapshot_path
+        try:
+            text = path.read_bytes()
         except FileNotFoundError:
             return None
         except OSError as error:
-            self._set_aside(f"cannot be read ({error.strerror})")
+            self._set_aside(path, f"cannot be read ({error.strerror})")
             return None
         try:
             document = json.loads(text)
         except (ValueError, RecursionError):
-            self._set_aside("is not valid JSON (a torn or damaged file)")
+            self._set_aside(path, "is not valid JSON (a torn or damaged file)")
             return None
-        problem = _snapshot_problem(document)
+        problem = _legacy_problem(document)
         if problem:
-            self._set_aside(problem)
+            self._set_aside(path, problem)
             return None
-        result: dict[str, Any] = document
-        return result
+        channels = document.pop("channels")
+        return Snapshot(meta=document, legacy_channels=channels)
 
-    def _set_aside(self, problem: str) -> None:
+    def _set_aside(self, path: Path, problem: str) -> None:
         stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ")
-        target = self.snapshot_path.with_name(f"{SNAPSHOT_NAME}.corrupt-{stamp}")
+        target = path.with_name(f"{path.name}.corrupt-{stamp}")
         try:
-            os.replace(self.snapshot_path, target)
+            os.replace(path, target)
         except OSError as error:
             _log.error(
                 "state snapshot %s %s and cannot be moved aside (%s); starting from empty models",
-                self.snapshot_path,
+                path,
                 problem,
                 error.strerror,
             )
             return
         _log.error(
             "state snapshot %s %s; moved it to %s and starting from empty models",
-            self.snapshot_path,
+            path,
             problem,
             target.name,
         )
@@ -197,13 +274,114 @@ class StateStore:
         self._journal.close()
 
 
-def _snapshot_problem(document: Any) -> str | None:
+class SnapshotError(ValueError):
+    """Why bytes are not a readable snapshot (becomes the set-aside log line)."""
+
+
+def encode_snapshot(groups: Sequence[SnapshotGroup], meta: Mapping[str, Any]) -> list[bytes]:
+    """The snapshot file's bytes, as parts to write one after the other."""
+    blocks: list[bytes] = []
+    entries = []
+    offset = 0
+    for group in groups:
+        packed = group.packed
+        block = np.ascontiguousarray(packed.rows, dtype=_FLOAT).tobytes()
+        entries.append(
+            {
+                "template": group.template,
+                "model": packed.model,
+                "layout": [[name, size] for name, size in packed.layout],
+                "names": list(group.names),
+                "wildcards": [list(w) for w in group.wildcards],
+                "offset": offset,
+                "rows": int(packed.rows.shape[0]),
+                "sides": {str(i): side for i, side in enumerate(packed.sides) if side},
+            }
+        )
+        blocks.append(block)
+        offset += len(block)
+    header = {"format": SNAPSHOT_FORMAT, "version": SNAPSHOT_VERSION, **meta, "groups": entries}
+    text = json.dumps(header, separators=(",", ":")).encode()
+    start = len(MAGIC) + _PREFIX.size
+    text += b" " * (-(start + len(text)) % 8)  # the payload starts 8-byte aligned
+    crc = zlib.crc32(text)
+    for block in blocks:
+        crc = zlib.crc32(block, crc)
+    prefix = MAGIC + _PREFIX.pack(SNAPSHOT_VERSION, crc, len(text), offset)
+    return [prefix, text, *blocks]
+
+
+def decode_snapshot(data: bytes) -> Snapshot:
+    """Parse and check a snapshot file's bytes; SnapshotError says what is wrong."""
+    with collector_paused():  # the header holds every channel's name and wildcards
+        return _decoded(data)
+
+
+def _decoded(data: bytes) -> Snapshot:
+    start = len(MAGIC) + _PREFIX.size
+    if not data.startswith(MAGIC):
+        raise SnapshotError("is not a zeroline snapshot")
+    if len(data) < start:
+        raise SnapshotError("is cut short (a torn or damaged file)")
+    version, crc, header_size, payload_size = _PREFIX.unpack_from(data, len(MAGIC))
+    if version != SNAPSHOT_VERSION:
+        raise SnapshotError(
+            f"has version {version!r}; this zeroline reads version {SNAPSHOT_VERSION} "
+            f"(and {LEGACY_SNAPSHOT_VERSION} as {LEGACY_SNAPSHOT_NAME})"
+        )
+    if len(data) != start + header_size + payload_size:
+        raise SnapshotError(
+            f"has {len(data)} bytes, its prefix says {start + header_size + payload_size} "
+            "(a torn or damaged file)"
+        )
+    body = memoryview(data)[start:]
+    if zlib.crc32(body) != crc:
+        raise SnapshotError("fails its CRC-32 check (a damaged file)")
+    try:
+        header = json.loads(bytes(body[:header_size]))
+    except (ValueError, RecursionError):
+        raise SnapshotError("has a header that is not valid JSON") from None
+    payload = body[header_size:]
+    if not isinstance(header, dict) or header.get("format") != SNAPSHOT_FORMAT:
+        raise SnapshotError("is not a zeroline snapshot")
+    if not isinstance(header.get("journal_seq", 0), int):
+        raise SnapshotError("has no valid journal_seq")
+    entries = header.pop("groups", None)
+    if not isinstance(entries, list):
+        raise SnapshotError("has no channel groups")
+    groups = [_group(entry, payload) for entry in entries]
+    return Snapshot(meta=header, groups=groups)
+
+
+def _group(entry: Any, payload: memoryview) -> SnapshotGroup:
+    try:
+        layout = [(str(name), int(size)) for name, size in entry["layout"]]
+        names = [str(name) for name in entry["names"]]
+        wildcards = [tuple(str(w) for w in ws) for ws in entry["wildcards"]]
+        rows, offset = int(entry["rows"]), int(entry["offset"])
+        width = sum(size for _, size in layout)
+        end = offset + 8 * rows * width
+        if len(names) != rows or len(wildcards) != rows or offset < 0 or end > len(payload):
+            raise ValueError("sizes do not agree")
+        block = np.frombuffer(payload[offset:end], dtype=_FLOAT).reshape(rows, width)
+        sides: list[dict[str, Any] | None] = [None] * rows
+        for index, side in entry["sides"].items():
+            if not isinstance(side, dict):
+                raise ValueError(f"side entry {index} is not an object")
+            sides[int(index)] = side
+        packed = PackedChannels(str(entry["model"]), layout, block, sides)
+        return SnapshotGroup(str(entry["template"]), names, wildcards, packed)
+    except (KeyError, TypeError, ValueError, IndexError, AttributeError) as error:
+        raise SnapshotError(f"has a damaged channel group ({error})") from None
+
+
+def _legacy_problem(document: Any) -> str | None:
     if not isinstance(document, dict) or document.get("format") != SNAPSHOT_FORMAT:
         return "is not a zeroline snapshot"
-    if document.get("version") != SNAPSHOT_VERSION:
+    if document.get("version") != LEGACY_SNAPSHOT_VERSION:
         return (
             f"has version {document.get('version')!r}; this zeroline reads version "
-            f"{SNAPSHOT_VERSION}"
+            f"{LEGACY_SNAPSHOT_VERSION} as JSON"
         )
     if not isinstance(document.get("channels"), dict):
         return "has no channel table"
