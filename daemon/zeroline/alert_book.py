@@ -40,6 +40,18 @@ class AlertBook:
     ['drift_limit']
     """
 
+    __slots__ = (
+        "_checks",
+        "_correction",
+        "_drift",
+        "_forecast",
+        "_health",
+        "_rate",
+        "_residual",
+        "channel",
+        "rules",
+    )
+
     def __init__(self, channel: str, rules: Iterable[AlertRule]) -> None:
         self.channel = channel
         by_name: dict[str, AlertRule] = {}

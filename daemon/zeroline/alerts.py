@@ -142,6 +142,19 @@ class Latch:
     [None, None, 'raised', None, 'cleared']
     """
 
+    __slots__ = (
+        "_last_time",
+        "_pending_since",
+        "_raised",
+        "_sign",
+        "clear_dwell",
+        "clear_level",
+        "direction",
+        "inclusive",
+        "raise_dwell",
+        "raise_level",
+    )
+
     def __init__(
         self,
         raise_level: float,
@@ -194,11 +207,15 @@ class Latch:
         self._last_time = time
         if math.isnan(level):
             return None
+        # `beyond`, inlined: this runs for every reading of every rule
+        signed = self._sign * level
         if self._raised:
-            moving = not self.beyond(level, self.clear_level)
+            threshold = self._sign * self.clear_level
+            moving = not (signed >= threshold if self.inclusive else signed > threshold)
             dwell = self.clear_dwell
         else:
-            moving = self.beyond(level, self.raise_level)
+            threshold = self._sign * self.raise_level
+            moving = signed >= threshold if self.inclusive else signed > threshold
             dwell = self.raise_dwell
         if not moving:
             self._pending_since = None
@@ -270,6 +287,8 @@ class TabularCusum:
     [False, False, False, False, False, True]
     """
 
+    __slots__ = ("_lower", "_upper", "h", "k")
+
     def __init__(self, k: float = 0.5, h: float = 5.0) -> None:
         if not (math.isfinite(k) and k >= 0):
             raise ConfigError(f"CUSUM reference value k={k} must be a finite number >= 0")
@@ -298,9 +317,9 @@ class TabularCusum:
     def update(self, z: float) -> bool:
         """Add one standardised value; True when either side exceeds h."""
         # Plain floats on the hot path; `cusum_step` is the same formula for arrays.
-        self._upper = max(0.0, self._upper + z - self.k)
-        self._lower = max(0.0, self._lower - z - self.k)
-        return self.signalling
+        upper = self._upper = max(0.0, self._upper + z - self.k)
+        lower = self._lower = max(0.0, self._lower - z - self.k)
+        return upper > self.h or lower > self.h  # `signalling`, inlined
 
     @property
     def signalling(self) -> bool:

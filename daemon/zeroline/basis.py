@@ -29,6 +29,7 @@ import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, replace
 from datetime import date, datetime
+from functools import cached_property
 from typing import Any, Protocol
 
 import numpy as np
@@ -63,6 +64,12 @@ class Term(Protocol):
     def row(self, t: float, inputs: Mapping[str, float]) -> list[float]: ...
 
     def slope(self, t: float, inputs: Mapping[str, float]) -> list[float]: ...
+
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point: ...
+
+
+#: A term's row and slope at one point, as Python floats (`Term.point`).
+Point = tuple[list[float], list[float]]
 
 
 @dataclass(frozen=True)
@@ -136,6 +143,9 @@ class Constant:
     def slope(self, t: float, inputs: Mapping[str, float]) -> list[float]:
         return [0.0]
 
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        return [1.0], [0.0]
+
 
 @dataclass(frozen=True)
 class Polynomial(_OfOneVariable):
@@ -167,6 +177,22 @@ class Polynomial(_OfOneVariable):
         u, rate = self.u.value(t, inputs), self.u.du_dt()
         return [k * u ** (k - 1) * rate for k in range(1, self.degree + 1)]
 
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        of, center, scale = self.u.of, self.u.center, self.u.scale
+        # `Standardised.value` and `du_dt`, inlined: this runs for every reading
+        if of == TIME:
+            u, rate = (t - center) / scale, 1.0 / scale
+        else:
+            u, rate = (inputs[of] - center) / scale, 0.0
+        # Degrees 1 and 2 spelt out: the same floats as `row` and `slope` (u**0 = 1 and
+        # u**1 = u exactly, so k·u^(k−1)·rate is rate and 2u·rate), without the loops.
+        if self.degree == 1:
+            return [u], [rate]
+        if self.degree == 2:
+            return [u, u**2], [rate, 2 * u * rate]
+        powers = range(1, self.degree + 1)
+        return [u**k for k in powers], [k * u ** (k - 1) * rate for k in powers]
+
 
 @dataclass(frozen=True)
 class Exponential(_OfOneVariable):
@@ -193,6 +219,10 @@ class Exponential(_OfOneVariable):
 
     def slope(self, t: float, inputs: Mapping[str, float]) -> list[float]:
         return [-self.row(t, inputs)[0] * (self.u.du_dt() / self.tau)]
+
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        value = self.row(t, inputs)[0]
+        return [value], [-value * (self.u.du_dt() / self.tau)]
 
 
 @dataclass(frozen=True)
@@ -238,10 +268,20 @@ class Periodic(_OfOneVariable):
             columns += [k * rate * np.cos(k * phase), -k * rate * np.sin(k * phase)]
         return np.stack(columns, axis=1)
 
+    @cached_property
+    def _offset(self) -> float:
+        """The epoch's phase in units of u, modulo the period (fixed once bound)."""
+        return math.fmod(self.epoch / self.u.scale, self.period)
+
+    @cached_property
+    def _rate(self) -> float:
+        """d(phase)/dt: 2π·(du/dt)/period."""
+        return 2.0 * math.pi * self.u.du_dt() / self.period
+
     def _phase_at(self, t: float, inputs: Mapping[str, float]) -> float:
         u = self.u.value(t, inputs)
         if self.u.of == TIME:
-            u = math.fmod(u + math.fmod(self.epoch / self.u.scale, self.period), self.period)
+            u = math.fmod(u + self._offset, self.period)
         return 2.0 * math.pi * u / self.period
 
     def row(self, t: float, inputs: Mapping[str, float]) -> list[float]:
@@ -253,11 +293,30 @@ class Periodic(_OfOneVariable):
 
     def slope(self, t: float, inputs: Mapping[str, float]) -> list[float]:
         phase = self._phase_at(t, inputs)
-        rate = 2.0 * math.pi * self.u.du_dt() / self.period
+        rate = self._rate
         values: list[float] = []
         for k in range(1, self.harmonics + 1):
             values += [k * rate * math.cos(k * phase), -k * rate * math.sin(k * phase)]
         return values
+
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        u = self.u
+        if u.of == TIME:  # `_phase_at`, inlined: this runs for every reading
+            phase = 2.0 * math.pi * math.fmod((t - u.center) / u.scale + self._offset, self.period)
+            phase /= self.period
+        else:
+            phase = self._phase_at(t, inputs)
+        if self.harmonics == 1:  # the common case, without the loop
+            sine, cosine, rate = math.sin(phase), math.cos(phase), self._rate
+            return [sine, cosine], [rate * cosine, -rate * sine]
+        rate = self._rate
+        row: list[float] = []
+        slope: list[float] = []
+        for k in range(1, self.harmonics + 1):
+            sine, cosine = math.sin(k * phase), math.cos(k * phase)
+            row += [sine, cosine]
+            slope += [k * rate * cosine, -k * rate * sine]
+        return row, slope
 
 
 @dataclass(frozen=True)
@@ -288,6 +347,9 @@ class Step(_OfOneVariable):
 
     def slope(self, t: float, inputs: Mapping[str, float]) -> list[float]:
         return [0.0]
+
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        return self.row(t, inputs), [0.0]
 
 
 @dataclass(frozen=True)
@@ -321,6 +383,13 @@ class Expression:
 
     def slope(self, t: float, inputs: Mapping[str, float]) -> list[float]:
         return [expression.evaluate_scalar(self.slope_tree, {TIME: t, **inputs})]
+
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        values = {TIME: t, **inputs}
+        return (
+            [expression.evaluate_scalar(self.tree, values)],
+            [expression.evaluate_scalar(self.slope_tree, values)],
+        )
 
 
 # --- the basis as a whole -------------------------------------------------------------------
@@ -385,6 +454,38 @@ class Basis:
         for term in self.terms:
             values += term.slope(t, inputs)
         return np.array(values)
+
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        """Row and slope at one point in one pass over the terms, as Python floats: the
+        per-reading hot path (the same numbers as `row` and `slope`)."""
+        row: list[float] = []
+        slope: list[float] = []
+        for term in self.terms:
+            term_row, term_slope = term.point(t, inputs)
+            row += term_row
+            slope += term_slope
+        return row, slope
+
+    def point_with(self, t: float, inputs: Mapping[str, float], at: Point) -> Point:
+        """Row and slope at t with the named inputs at `inputs`, given `at`, the point at
+        the same t with other input values: terms that read no input are copied from it
+        (drift is judged at the inputs' means, right after the reading's own row)."""
+        row, slope = list(at[0]), list(at[1])
+        for term, start, stop in self._input_terms:
+            row[start:stop], slope[start:stop] = term.point(t, inputs)
+        return row, slope
+
+    @cached_property
+    def _input_terms(self) -> tuple[tuple[Term, int, int], ...]:
+        """The terms that read a named input, with their columns [start, stop)."""
+        found: list[tuple[Term, int, int]] = []
+        start = 0
+        for term in self.terms:
+            stop = start + len(term.names)
+            if term.variables:
+                found.append((term, start, stop))
+            start = stop
+        return tuple(found)
 
     def derivative(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         """d(design)/dt, shape (len(t), size)."""

@@ -107,6 +107,8 @@ def build_rules(channel: str, config: AlertConfig, *, cap: float | None) -> list
 class ChannelAlerts:
     """A channel's alert book plus the glue from corrected readings to rule inputs."""
 
+    __slots__ = ("book",)
+
     def __init__(self, channel: str, config: AlertConfig, *, cap: float | None) -> None:
         self.book = AlertBook(channel, build_rules(channel, config, cap=cap))
 

@@ -8,26 +8,30 @@ stamped later than the reading is not used for it either: the model must not see
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 
-@dataclass(frozen=True)
-class InputValue:
+class InputValue(NamedTuple):
+    """One value of an input and its time (a tuple: one is stored per arriving value)."""
+
     time: float
     value: float
 
 
-@dataclass(frozen=True)
-class Lookup:
+class Lookup(NamedTuple):
     """What a reading gets for one input: the value to use, and whether it was fresh."""
 
     value: float | None
     fresh: bool
 
 
+_NEVER_SEEN = Lookup(None, False)
+
+
 class InputCache:
     """Latest value per input name; bounded by the number of declared inputs."""
+
+    __slots__ = ("_latest", "max_ages")
 
     def __init__(self, max_ages: dict[str, float]) -> None:
         self.max_ages = dict(max_ages)
@@ -43,7 +47,7 @@ class InputCache:
         """The value of `name` for a reading at time `at`."""
         latest = self._latest.get(name)
         if latest is None:
-            return Lookup(None, False)
+            return _NEVER_SEEN
         age = at - latest.time
         return Lookup(latest.value, 0.0 <= age <= self.max_ages[name])
 
