@@ -268,9 +268,10 @@ class Channel:
         A reading not newer than the last one processed is the caller's to skip (the daemon
         counts those as duplicates); here it raises InputError.
 
-        The hot path (issue 10): one pass over the basis gives the row, its slope and both
-        at the inputs' means; one product gives baseline, drift rate, drift and its rate;
-        two triangular solves give every variance (P is never formed).
+        The hot path (issue 10): one pass over the basis gives the row and its slope (the
+        drift at the inputs' means re-evaluates only the terms that read an input); two
+        triangular solves give each variance, so P is never formed; the covariance
+        matrices are read out only for a forecast.
         """
         time = sample.time
         if time <= self._last_time:
@@ -292,14 +293,19 @@ class Channel:
             return self._uncorrectable(sample, flags), self.alerts.on_missing(time, flags)
         here = basis.point(t, covariates)
         phi = np.array(here[0])
+        phi_squared = float(phi.dot(phi))  # for the finiteness check and the wind-up test
         psi = self._gain.row(t, covariates) if self._gain else None
         if self._last_useful > -math.inf and time - self._last_useful > self.learn.max_gap:
             flags.append(q.EXTRAPOLATING)  # judged before this sample teaches anything
-        learned, check_error, z = self._learn(sample, t, phi, psi, stale=q.INPUT_STALE in flags)
+        learned, check_error, z = self._learn(
+            sample, t, phi, psi, phi_squared, stale=q.INPUT_STALE in flags
+        )
         if learned:
             self._last_useful = time
         self._track_means(time, covariates)
-        return self._after_learning(sample, t, here, phi, psi, flags, learned, check_error, z)
+        return self._after_learning(
+            sample, t, here, phi, phi_squared, psi, flags, learned, check_error, z
+        )
 
     def _after_learning(
         self,
@@ -307,6 +313,7 @@ class Channel:
         t: float,
         here: Point,
         phi: Array,
+        phi_squared: float,
         psi: Array | None,
         flags: list[str],
         learned: bool,
@@ -344,7 +351,7 @@ class Channel:
             learned=learned,
             theta=theta,
         )
-        health = self._health(flags, phi, psi, row_variance, established)
+        health = self._health(flags, phi_squared, psi, row_variance, established)
         alerts = self.alerts
         if not established:  # an untrained model's drift and residuals say nothing
             events = alerts.observe(
@@ -467,19 +474,21 @@ class Channel:
     def _covariates(self, time: float) -> tuple[dict[str, float], list[str], bool]:
         """Inputs the basis needs: (values, flags, missing). A stale input's last value is
         used and flagged; one never seen makes the reading uncorrectable (QARTOD 9)."""
-        values: dict[str, float] = {}
-        stale = False
-        lookup = self._inputs.lookup
-        for name in self._needed:
-            value, fresh = lookup(name, time)
-            if value is None:
-                return {}, [q.INPUT_STALE], True
-            stale = stale or not fresh
-            values[name] = value
+        found = self._inputs.values(self._needed, time)
+        if found is None:
+            return {}, [q.INPUT_STALE], True
+        values, stale = found
         return values, [q.INPUT_STALE] if stale else [], False
 
     def _learn(
-        self, sample: Sample, t: float, phi: Array, psi: Array | None, *, stale: bool
+        self,
+        sample: Sample,
+        t: float,
+        phi: Array,
+        psi: Array | None,
+        phi_squared: float,
+        *,
+        stale: bool,
     ) -> tuple[bool, float | None, float | None]:
         """Update the estimator if this sample teaches the baseline.
 
@@ -497,7 +506,8 @@ class Channel:
         if self.learn.mode == "envelope" or self.learn.robust:
             weight = self._weight(target - estimator.predict(row))
         else:  # unit weight; refuse the rows `predict` would refuse, as it used to be asked
-            if not math.isfinite(float(row.dot(row))):
+            squared = phi_squared if row is phi else float(row.dot(row))
+            if not math.isfinite(squared):
                 raise InputError(_NON_FINITE_ROW)
             weight = 1.0
         innovation = estimator.update(row, target, weight, t)
@@ -694,27 +704,27 @@ class Channel:
     def _health(
         self,
         flags: list[str],
-        phi: Array,
+        phi_squared: float,
         psi: Array | None,
         row_variance: float,
         established: bool,
     ) -> list[str]:
-        """Model problems for the model_health rule; `row_variance` is rowᵀP·row of the
-        row that was (or would have been) learnt."""
+        """Model problems for the model_health rule; `row_variance` is rowᵀP·row for the
+        reading's row φ, or [ψ, φ] with a gain (`phi_squared` = ‖φ‖²)."""
         problems = [flag for flag in flags if flag in (q.INPUT_STALE, q.ILL_CONDITIONED)]
         if not established:
             return problems  # still learning: that is the 'learning' flag, not wind-up
         if self._last_time - self._last_useful > self.learn.max_gap:
             problems.append("no_useful_sample")
-        if self._wound_up(phi, psi, row_variance):
+        if self._wound_up(phi_squared, psi, row_variance):
             problems.append("wind_up")
         return problems
 
-    def _wound_up(self, phi: Array, psi: Array | None, row_variance: float) -> bool:
+    def _wound_up(self, phi_squared: float, psi: Array | None, row_variance: float) -> bool:
         """The data no longer pin the baseline down: its variance has grown back to a quarter
         of what the prior alone allows (the prior itself bounds it, see the estimator)."""
-        row = phi if psi is None else np.concatenate([psi, phi])
-        prior_only = self._prior_variance * float(row.dot(row))  # Σ(sd·rowᵢ)², one sd
+        squared = phi_squared if psi is None else phi_squared + float(psi.dot(psi))
+        prior_only = self._prior_variance * squared  # Σ(sd·rowᵢ)² of the row, one sd
         return row_variance > 0.25 * prior_only
 
     # --- state --------------------------------------------------------------------------

@@ -51,6 +51,21 @@ class InputCache:
         age = at - latest.time
         return Lookup(latest.value, 0.0 <= age <= self.max_ages[name])
 
+    def values(self, names: tuple[str, ...], at: float) -> tuple[dict[str, float], bool] | None:
+        """`lookup` for several names at once (once per reading): their values and whether
+        any is stale, or None if one was never seen."""
+        values: dict[str, float] = {}
+        stale = False
+        latest, max_ages = self._latest, self.max_ages
+        for name in names:
+            known = latest.get(name)
+            if known is None:
+                return None
+            values[name] = known.value
+            age = at - known.time
+            stale = stale or not 0.0 <= age <= max_ages[name]
+        return values, stale
+
     def to_state(self) -> dict[str, Any]:
         return {name: [v.time, v.value] for name, v in self._latest.items()}
 
