@@ -27,9 +27,8 @@ from __future__ import annotations
 import difflib
 import math
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from datetime import date, datetime
-from functools import cached_property
 from typing import Any, Protocol
 
 import numpy as np
@@ -268,20 +267,10 @@ class Periodic(_OfOneVariable):
             columns += [k * rate * np.cos(k * phase), -k * rate * np.sin(k * phase)]
         return np.stack(columns, axis=1)
 
-    @cached_property
-    def _offset(self) -> float:
-        """The epoch's phase in units of u, modulo the period (fixed once bound)."""
-        return math.fmod(self.epoch / self.u.scale, self.period)
-
-    @cached_property
-    def _rate(self) -> float:
-        """d(phase)/dt: 2π·(du/dt)/period."""
-        return 2.0 * math.pi * self.u.du_dt() / self.period
-
     def _phase_at(self, t: float, inputs: Mapping[str, float]) -> float:
         u = self.u.value(t, inputs)
         if self.u.of == TIME:
-            u = math.fmod(u + self._offset, self.period)
+            u = math.fmod(u + math.fmod(self.epoch / self.u.scale, self.period), self.period)
         return 2.0 * math.pi * u / self.period
 
     def row(self, t: float, inputs: Mapping[str, float]) -> list[float]:
@@ -293,23 +282,26 @@ class Periodic(_OfOneVariable):
 
     def slope(self, t: float, inputs: Mapping[str, float]) -> list[float]:
         phase = self._phase_at(t, inputs)
-        rate = self._rate
+        rate = 2.0 * math.pi * self.u.du_dt() / self.period
         values: list[float] = []
         for k in range(1, self.harmonics + 1):
             values += [k * rate * math.cos(k * phase), -k * rate * math.sin(k * phase)]
         return values
 
     def point(self, t: float, inputs: Mapping[str, float]) -> Point:
-        u = self.u
-        if u.of == TIME:  # `_phase_at`, inlined: this runs for every reading
-            phase = 2.0 * math.pi * math.fmod((t - u.center) / u.scale + self._offset, self.period)
-            phase /= self.period
+        u, period = self.u, self.period
+        # `_phase_at` and the rate of `slope`, inlined (the same expressions): this runs for
+        # every reading
+        if u.of == TIME:
+            offset = math.fmod(self.epoch / u.scale, period)
+            phase = 2.0 * math.pi * math.fmod((t - u.center) / u.scale + offset, period)
+            phase /= period
+            rate = 2.0 * math.pi * (1.0 / u.scale) / period
         else:
-            phase = self._phase_at(t, inputs)
+            phase, rate = self._phase_at(t, inputs), 2.0 * math.pi * 0.0 / period
         if self.harmonics == 1:  # the common case, without the loop
-            sine, cosine, rate = math.sin(phase), math.cos(phase), self._rate
+            sine, cosine = math.sin(phase), math.cos(phase)
             return [sine, cosine], [rate * cosine, -rate * sine]
-        rate = self._rate
         row: list[float] = []
         slope: list[float] = []
         for k in range(1, self.harmonics + 1):
@@ -401,6 +393,13 @@ class Basis:
 
     terms: tuple[Term, ...]
     epoch: float = 0.0
+    # (term index, start, stop) of the terms that read a named input: worked out when the
+    # configured basis is made and shared by every channel's `with_epoch` copy.
+    input_spans: tuple[tuple[int, int, int], ...] = field(default=(), compare=False, repr=False)
+
+    def __post_init__(self) -> None:
+        if not self.input_spans:
+            object.__setattr__(self, "input_spans", self._find_input_spans())
 
     @property
     def names(self) -> tuple[str, ...]:
@@ -433,7 +432,7 @@ class Basis:
             replace(term, epoch=epoch) if isinstance(term, (Periodic, Step)) else term
             for term in self.terms
         )
-        return Basis(bound, epoch)
+        return Basis(bound, epoch, self.input_spans)
 
     def evaluate(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         """The design matrix, shape (len(t), size)."""
@@ -471,19 +470,18 @@ class Basis:
         the same t with other input values: terms that read no input are copied from it
         (drift is judged at the inputs' means, right after the reading's own row)."""
         row, slope = list(at[0]), list(at[1])
-        for term, start, stop in self._input_terms:
-            row[start:stop], slope[start:stop] = term.point(t, inputs)
+        terms = self.terms
+        for index, start, stop in self.input_spans:
+            row[start:stop], slope[start:stop] = terms[index].point(t, inputs)
         return row, slope
 
-    @cached_property
-    def _input_terms(self) -> tuple[tuple[Term, int, int], ...]:
-        """The terms that read a named input, with their columns [start, stop)."""
-        found: list[tuple[Term, int, int]] = []
+    def _find_input_spans(self) -> tuple[tuple[int, int, int], ...]:
+        found: list[tuple[int, int, int]] = []
         start = 0
-        for term in self.terms:
+        for index, term in enumerate(self.terms):
             stop = start + len(term.names)
             if term.variables:
-                found.append((term, start, stop))
+                found.append((index, start, stop))
             start = stop
         return tuple(found)
 
