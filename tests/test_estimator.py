@@ -10,6 +10,7 @@ forgetting. All data are invented here from seeded generators.
 
 from __future__ import annotations
 
+import copy
 import json
 import math
 from collections.abc import Callable
@@ -482,3 +483,40 @@ class TestInterface:
             RecursiveEstimator(2, prior_sd=[1.0, 2.0, 3.0])
         with pytest.raises(InputError, match="n_terms"):
             RecursiveEstimator(0)
+
+
+class TestSpread:
+    """`spread` (two triangular solves) against P formed explicitly from the factor."""
+
+    @pytest.mark.parametrize("column_scale", [None, [1.0, 2.0**10, 3.0]])
+    def test_spread_equals_the_explicit_covariance(self, column_scale: list[float] | None) -> None:
+        """φᵀPφ and P·φ to 1e-12 relative, with forgetting pending (g ≠ 1) and settled."""
+        rng = np.random.default_rng(5)
+        est = RecursiveEstimator(3, half_life=2 * DAY, column_scale=column_scale)
+        for k in range(500):
+            t = k * 10 * MINUTE
+            est.update([1.0, t / DAY, math.sin(t / DAY)], 1.0 + rng.normal(0, 0.1), time=t)
+        phi = np.array([1.0, 3.2, -0.4])
+        for pending in (True, False):
+            assert (est._g != 1.0) == pending  # forgetting not yet multiplied in, then settled
+            covariance = copy.deepcopy(est).covariance  # reading P settles the copy only
+            quadratic, solved = est.spread(phi)
+            np.testing.assert_allclose(solved, covariance @ phi, rtol=1e-12)
+            assert quadratic == pytest.approx(float(phi @ covariance @ phi), rel=1e-12)
+            assert quadratic == pytest.approx(est.variance(phi), rel=1e-12)
+            est.settle()
+
+    def test_settle_changes_no_result(self) -> None:
+        """Multiplying the pending forgetting in is a uniform scaling: θ, σ̂ and φᵀPφ stay."""
+        est = RecursiveEstimator(2, half_life=DAY)
+        for k in range(100):
+            est.update([1.0, k / 100], 2.0 + 0.01 * (k % 7), time=k * HOUR)
+        phi = np.array([1.0, 0.5])
+        before = (est.coefficients, est.residual_sd, est.spread(phi)[0])
+        est.settle()
+        np.testing.assert_allclose(est.coefficients, before[0], rtol=1e-14)
+        assert est.residual_sd == pytest.approx(before[1], rel=1e-14)
+        assert est.spread(phi)[0] == pytest.approx(before[2], rel=1e-14)
+        theta, sd = est.solution()
+        np.testing.assert_array_equal(theta, est.coefficients)
+        assert sd == est.residual_sd

@@ -26,6 +26,7 @@ from zeroline.alert_rules import (
 )
 from zeroline.alerts import RULE_NAMES, AlertEvent
 from zeroline.errors import ConfigError
+from zeroline.objects import shallow_copy
 
 RuleT = TypeVar("RuleT", bound=AlertRule)
 
@@ -51,6 +52,18 @@ class AlertBook:
     >>> sorted(book.active())
     ['drift_limit']
     """
+
+    __slots__ = (
+        "_checks",
+        "_correction",
+        "_drift",
+        "_forecast",
+        "_health",
+        "_rate",
+        "_residual",
+        "channel",
+        "rules",
+    )
 
     def __init__(self, channel: str, rules: Iterable[AlertRule]) -> None:
         self.channel = channel
@@ -165,14 +178,12 @@ class AlertBook:
 
     def blank_copy(self, channel: str) -> AlertBook:
         """The same rules for `channel`, all clear (cheaper than building the rules)."""
-        new = object.__new__(AlertBook)
-        state = new.__dict__
-        state.update(self.__dict__)
+        new = shallow_copy(self)
         new.channel = channel
         rules = {name: rule.blank_copy(channel) for name, rule in self.rules.items()}
         new.rules = rules
         for name in rules:  # point the typed handles at the copies
-            state[_HANDLE_OF[name]] = rules[name]
+            setattr(new, _HANDLE_OF[name], rules[name])
         return new
 
     def packed_layout(self) -> list[tuple[str, int]]:

@@ -48,6 +48,7 @@ from zeroline.alerts import (
     format_rate,
 )
 from zeroline.errors import ConfigError
+from zeroline.objects import shallow_copy
 
 #: A forecast of the drift: absolute future times → (predicted drift, its standard deviation).
 Predictor = Callable[[FloatArray], tuple[npt.ArrayLike, npt.ArrayLike]]
@@ -67,6 +68,8 @@ def _fraction(name: str, value: float) -> float:
 
 class AlertRule:
     """What every rule shares: its name, channel, severity, active event and state dict."""
+
+    __slots__ = ("_active", "channel", "severity")
 
     name: ClassVar[str]
 
@@ -144,8 +147,7 @@ class AlertRule:
     def blank_copy(self, channel: str) -> AlertRule:
         """The same settings for `channel`, clear and never fed: much cheaper than the
         constructor, so a channel template builds its rules once and copies them."""
-        new = object.__new__(type(self))
-        new.__dict__.update(self.__dict__)
+        new = shallow_copy(self)
         new.channel = channel
         new._active = None
         new._blank_learned()
@@ -170,6 +172,8 @@ class AlertRule:
 
 class _LatchedRule(AlertRule):
     """A rule whose whole memory is one `Latch`."""
+
+    __slots__ = ("_latch",)
 
     def __init__(self, *, channel: str, severity: str, latch: Latch) -> None:
         super().__init__(channel=channel, severity=severity)
@@ -203,6 +207,8 @@ class DriftLimitRule(_LatchedRule):
     >>> [e.state for t, d in [(0, 10), (1, -16), (2, 13), (3, 11)] for e in rule.observe(t, d)]
     ['raised', 'cleared']
     """
+
+    __slots__ = ("clear_dwell", "clear_fraction", "dwell", "limit")
 
     name = "drift_limit"
 
@@ -245,6 +251,8 @@ class DriftLimitRule(_LatchedRule):
 
 class RateLimitRule(_LatchedRule):
     """abs(d baseline/dt) beyond `limit_per_s` (the caller passes the analytic derivative)."""
+
+    __slots__ = ("clear_dwell", "clear_fraction", "dwell", "limit_per_s")
 
     name = "rate_limit"
 
@@ -297,6 +305,19 @@ class ForecastRule(_LatchedRule):
     the alert clears once the predicted crossing lies beyond clear_factor·horizon (or there
     is none). value = predicted seconds to the crossing, limit = horizon.
     """
+
+    __slots__ = (
+        "_last_evaluated",
+        "_z",
+        "clear_dwell",
+        "clear_factor",
+        "confidence",
+        "drift_limit",
+        "dwell",
+        "grid_points",
+        "horizon_s",
+        "min_interval",
+    )
 
     name = "forecast"
 
@@ -433,6 +454,8 @@ class ResidualChangeRule(AlertRule):
     signal clear it. Non-finite z carry no information and are skipped.
     """
 
+    __slots__ = ("_calm", "_cusum", "clear_samples")
+
     name = "residual_change"
 
     def __init__(
@@ -522,6 +545,8 @@ class CheckFailureRule(AlertRule):
     ['raised', 'cleared']
     """
 
+    __slots__ = ("_run", "clear_limit", "consecutive", "hard_limit", "limit")
+
     name = "check_failures"
 
     def __init__(
@@ -604,6 +629,8 @@ class CheckFailureRule(AlertRule):
 class CorrectionCapRule(_LatchedRule):
     """The correction is at or over its cap: the sensor needs recalibration or replacement."""
 
+    __slots__ = ("cap", "clear_dwell", "clear_fraction", "dwell")
+
     name = "correction_cap"
 
     def __init__(
@@ -655,6 +682,8 @@ class ModelHealthRule(_LatchedRule):
     the retained alert always says what is wrong now. value = number of problems.
     """
 
+    __slots__ = ("clear_dwell", "dwell")
+
     name = "model_health"
 
     def __init__(
@@ -676,11 +705,13 @@ class ModelHealthRule(_LatchedRule):
 
     def observe(self, time: float, problems: Iterable[str]) -> list[AlertEvent]:
         """Feed the set of problem names the model reports now (empty: healthy)."""
-        names = sorted(set(problems))
+        names = sorted(set(problems)) if problems else []
         was_active = self._active
         change = self._latch.update(time, float(len(names)))
         if change == "cleared":
             return [self._emit(time, "cleared", 0.0, None, "model healthy again")]
+        if change is None and (was_active is None or not names):
+            return []  # nothing changed (the usual reading): no message to compare
         message = _problem_message(names)
         # The active event's message names the problems it was raised for (and survives a
         # snapshot with it), so comparing messages tells whether the set has changed.

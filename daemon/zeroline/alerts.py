@@ -41,6 +41,7 @@ import numpy as np
 import numpy.typing as npt
 
 from zeroline.errors import ConfigError
+from zeroline.objects import shallow_copy
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -143,6 +144,19 @@ class Latch:
     [None, None, 'raised', None, 'cleared']
     """
 
+    __slots__ = (
+        "_last_time",
+        "_pending_since",
+        "_raised",
+        "_sign",
+        "clear_dwell",
+        "clear_level",
+        "direction",
+        "inclusive",
+        "raise_dwell",
+        "raise_level",
+    )
+
     def __init__(
         self,
         raise_level: float,
@@ -195,11 +209,15 @@ class Latch:
         self._last_time = time
         if math.isnan(level):
             return None
+        # `beyond`, inlined: this runs for every reading of every rule
+        signed = self._sign * level
         if self._raised:
-            moving = not self.beyond(level, self.clear_level)
+            threshold = self._sign * self.clear_level
+            moving = not (signed >= threshold if self.inclusive else signed > threshold)
             dwell = self.clear_dwell
         else:
-            moving = self.beyond(level, self.raise_level)
+            threshold = self._sign * self.raise_level
+            moving = signed >= threshold if self.inclusive else signed > threshold
             dwell = self.raise_dwell
         if not moving:
             self._pending_since = None
@@ -254,8 +272,7 @@ class Latch:
 
     def blank_copy(self) -> Latch:
         """The same settings, cleared and never fed (cheaper than the constructor)."""
-        new = object.__new__(Latch)
-        new.__dict__.update(self.__dict__)
+        new = shallow_copy(self)
         new._raised, new._pending_since, new._last_time = False, None, None
         return new
 
@@ -297,6 +314,8 @@ class TabularCusum:
     [False, False, False, False, False, True]
     """
 
+    __slots__ = ("_lower", "_upper", "h", "k")
+
     def __init__(self, k: float = 0.5, h: float = 5.0) -> None:
         if not (math.isfinite(k) and k >= 0):
             raise ConfigError(f"CUSUM reference value k={k} must be a finite number >= 0")
@@ -325,9 +344,9 @@ class TabularCusum:
     def update(self, z: float) -> bool:
         """Add one standardised value; True when either side exceeds h."""
         # Plain floats on the hot path; `cusum_step` is the same formula for arrays.
-        self._upper = max(0.0, self._upper + z - self.k)
-        self._lower = max(0.0, self._lower - z - self.k)
-        return self.signalling
+        upper = self._upper = max(0.0, self._upper + z - self.k)
+        lower = self._lower = max(0.0, self._lower - z - self.k)
+        return upper > self.h or lower > self.h  # `signalling`, inlined
 
     @property
     def signalling(self) -> bool:
@@ -352,8 +371,7 @@ class TabularCusum:
 
     def blank_copy(self) -> TabularCusum:
         """The same k and h, both sides at zero."""
-        new = object.__new__(TabularCusum)
-        new.__dict__.update(self.__dict__)
+        new = shallow_copy(self)
         new._upper = new._lower = 0.0
         return new
 

@@ -27,7 +27,7 @@ from __future__ import annotations
 import difflib
 import math
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from datetime import date, datetime
 from typing import Any, Protocol
 
@@ -63,6 +63,12 @@ class Term(Protocol):
     def row(self, t: float, inputs: Mapping[str, float]) -> list[float]: ...
 
     def slope(self, t: float, inputs: Mapping[str, float]) -> list[float]: ...
+
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point: ...
+
+
+#: A term's row and slope at one point, as Python floats (`Term.point`).
+Point = tuple[list[float], list[float]]
 
 
 @dataclass(frozen=True)
@@ -136,6 +142,9 @@ class Constant:
     def slope(self, t: float, inputs: Mapping[str, float]) -> list[float]:
         return [0.0]
 
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        return [1.0], [0.0]
+
 
 @dataclass(frozen=True)
 class Polynomial(_OfOneVariable):
@@ -167,6 +176,22 @@ class Polynomial(_OfOneVariable):
         u, rate = self.u.value(t, inputs), self.u.du_dt()
         return [k * u ** (k - 1) * rate for k in range(1, self.degree + 1)]
 
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        of, center, scale = self.u.of, self.u.center, self.u.scale
+        # `Standardised.value` and `du_dt`, inlined: this runs for every reading
+        if of == TIME:
+            u, rate = (t - center) / scale, 1.0 / scale
+        else:
+            u, rate = (inputs[of] - center) / scale, 0.0
+        # Degrees 1 and 2 spelt out: the same floats as `row` and `slope` (u**0 = 1 and
+        # u**1 = u exactly, so k·u^(k−1)·rate is rate and 2u·rate), without the loops.
+        if self.degree == 1:
+            return [u], [rate]
+        if self.degree == 2:
+            return [u, u**2], [rate, 2 * u * rate]
+        powers = range(1, self.degree + 1)
+        return [u**k for k in powers], [k * u ** (k - 1) * rate for k in powers]
+
 
 @dataclass(frozen=True)
 class Exponential(_OfOneVariable):
@@ -193,6 +218,10 @@ class Exponential(_OfOneVariable):
 
     def slope(self, t: float, inputs: Mapping[str, float]) -> list[float]:
         return [-self.row(t, inputs)[0] * (self.u.du_dt() / self.tau)]
+
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        value = self.row(t, inputs)[0]
+        return [value], [-value * (self.u.du_dt() / self.tau)]
 
 
 @dataclass(frozen=True)
@@ -259,6 +288,28 @@ class Periodic(_OfOneVariable):
             values += [k * rate * math.cos(k * phase), -k * rate * math.sin(k * phase)]
         return values
 
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        u, period = self.u, self.period
+        # `_phase_at` and the rate of `slope`, inlined (the same expressions): this runs for
+        # every reading
+        if u.of == TIME:
+            offset = math.fmod(self.epoch / u.scale, period)
+            phase = 2.0 * math.pi * math.fmod((t - u.center) / u.scale + offset, period)
+            phase /= period
+            rate = 2.0 * math.pi * (1.0 / u.scale) / period
+        else:
+            phase, rate = self._phase_at(t, inputs), 2.0 * math.pi * 0.0 / period
+        if self.harmonics == 1:  # the common case, without the loop
+            sine, cosine = math.sin(phase), math.cos(phase)
+            return [sine, cosine], [rate * cosine, -rate * sine]
+        row: list[float] = []
+        slope: list[float] = []
+        for k in range(1, self.harmonics + 1):
+            sine, cosine = math.sin(k * phase), math.cos(k * phase)
+            row += [sine, cosine]
+            slope += [k * rate * cosine, -k * rate * sine]
+        return row, slope
+
 
 @dataclass(frozen=True)
 class Step(_OfOneVariable):
@@ -288,6 +339,9 @@ class Step(_OfOneVariable):
 
     def slope(self, t: float, inputs: Mapping[str, float]) -> list[float]:
         return [0.0]
+
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        return self.row(t, inputs), [0.0]
 
 
 @dataclass(frozen=True)
@@ -322,6 +376,13 @@ class Expression:
     def slope(self, t: float, inputs: Mapping[str, float]) -> list[float]:
         return [expression.evaluate_scalar(self.slope_tree, {TIME: t, **inputs})]
 
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        values = {TIME: t, **inputs}
+        return (
+            [expression.evaluate_scalar(self.tree, values)],
+            [expression.evaluate_scalar(self.slope_tree, values)],
+        )
+
 
 # --- the basis as a whole -------------------------------------------------------------------
 
@@ -344,6 +405,13 @@ class Basis:
 
     terms: tuple[Term, ...]
     epoch: float = 0.0
+    # (term index, start, stop) of the terms that read a named input: worked out when the
+    # configured basis is made and shared by every channel's `with_epoch` copy.
+    input_spans: tuple[tuple[int, int, int], ...] = field(default=(), compare=False, repr=False)
+
+    def __post_init__(self) -> None:
+        if not self.input_spans:
+            object.__setattr__(self, "input_spans", self._find_input_spans())
 
     @property
     def names(self) -> tuple[str, ...]:
@@ -376,7 +444,7 @@ class Basis:
             _at_epoch(term, epoch) if isinstance(term, (Periodic, Step)) else term
             for term in self.terms
         )
-        return Basis(bound, epoch)
+        return Basis(bound, epoch, self.input_spans)
 
     def evaluate(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         """The design matrix, shape (len(t), size)."""
@@ -397,6 +465,37 @@ class Basis:
         for term in self.terms:
             values += term.slope(t, inputs)
         return np.array(values)
+
+    def point(self, t: float, inputs: Mapping[str, float]) -> Point:
+        """Row and slope at one point in one pass over the terms, as Python floats: the
+        per-reading hot path (the same numbers as `row` and `slope`)."""
+        row: list[float] = []
+        slope: list[float] = []
+        for term in self.terms:
+            term_row, term_slope = term.point(t, inputs)
+            row += term_row
+            slope += term_slope
+        return row, slope
+
+    def point_with(self, t: float, inputs: Mapping[str, float], at: Point) -> Point:
+        """Row and slope at t with the named inputs at `inputs`, given `at`, the point at
+        the same t with other input values: terms that read no input are copied from it
+        (drift is judged at the inputs' means, right after the reading's own row)."""
+        row, slope = list(at[0]), list(at[1])
+        terms = self.terms
+        for index, start, stop in self.input_spans:
+            row[start:stop], slope[start:stop] = terms[index].point(t, inputs)
+        return row, slope
+
+    def _find_input_spans(self) -> tuple[tuple[int, int, int], ...]:
+        found: list[tuple[int, int, int]] = []
+        start = 0
+        for index, term in enumerate(self.terms):
+            stop = start + len(term.names)
+            if term.variables:
+                found.append((index, start, stop))
+            start = stop
+        return tuple(found)
 
     def derivative(self, t: Array, inputs: Mapping[str, Array]) -> Array:
         """d(design)/dt, shape (len(t), size)."""

@@ -30,16 +30,18 @@ from typing import Any, ClassVar
 
 import numpy as np
 import numpy.typing as npt
+from scipy.linalg import blas
 
 from zeroline import quality as q
 from zeroline.alerts import Crossing, crossing_time
-from zeroline.basis import Basis
+from zeroline.basis import Basis, Point
 from zeroline.channel_alerts import ChannelAlerts
 from zeroline.config import ChannelConfig
 from zeroline.errors import InputError
 from zeroline.estimator import RecursiveEstimator, pack_estimators, unpack_estimators
 from zeroline.estimator import packed_layout as estimator_layout
 from zeroline.inputs import InputCache
+from zeroline.objects import shallow_copy
 from zeroline.state_layout import (
     PackedChannels,
     collector_paused,
@@ -55,6 +57,9 @@ CONDITION_EVERY = 32
 FORECAST_POINTS = 200
 RATE_Z = 2.0  # a drift rate counts once it is this many standard uncertainties beyond zero
 INPUT_MEAN_TAU = 86400.0  # time constant of the input means that drift is judged at
+# BLAS handles fetched once; positional arguments, because f2py parses keywords slower.
+_dsyr, _dsymv = blas.dsyr, blas.dsymv
+_NON_FINITE_ROW = "phi must be finite numbers (no NaN, no infinity, not above 1e150)"
 
 
 @dataclass(frozen=True)
@@ -137,21 +142,36 @@ class SquaredInformation:
     It is only ever used as a quadratic form (never solved), so a plain accumulation of
     rank-one terms is numerically safe; squared weights forget twice as fast. In a sliding
     window the estimator's own information is used instead (exact for unit weights).
+
+    Only the upper triangle is kept up to date (BLAS dsyr/dsymv, one call each per
+    reading); `matrix()` mirrors it. The snapshot stores that triangle, so a restored
+    matrix computes exactly the same quadratic forms.
     """
+
+    __slots__ = ("_matrix", "_time", "half_life")
 
     def __init__(self, size: int, half_life: float | None) -> None:
         self.half_life = half_life
-        self._matrix = np.zeros((size, size))
+        self._matrix = np.zeros((size, size), order="F")  # BLAS updates it in place
         self._time: float | None = None
 
     def add(self, row: Array, weight_squared: float, time: float) -> None:
         if self.half_life is not None and self._time is not None:
             self._matrix *= 4.0 ** (-(time - self._time) / self.half_life)
         self._time = time
-        self._matrix += weight_squared * np.outer(row, row)
+        self._matrix = _dsyr(weight_squared, row, 0, 1, 0, row.shape[0], self._matrix, 1)
+
+    def quadratic(self, solved: Array, prior_precision: float) -> float:
+        """vᵀ(S + prior_precision·I)v for v = `solved` (a channel's prior SD is one number
+        for every term, so its information is a multiple of the identity)."""
+        data = float(_dsymv(1.0, self._matrix, solved).dot(solved))
+        return data + prior_precision * float(solved.dot(solved))
 
     def matrix(self) -> Array:
-        return self._matrix
+        """S in full (the upper triangle mirrored)."""
+        upper = np.triu(self._matrix)
+        full: Array = upper + np.triu(upper, 1).T
+        return full
 
     def reset(self) -> None:
         self._matrix[:] = 0.0
@@ -226,6 +246,11 @@ class Channel:
         self._input_stage1: dict[str, float] = {}
         self._means_time: float | None = None
         self._since_condition = 0
+        self._payload_inputs = tuple(
+            (spec.name, spec.field) for spec in config.inputs.values() if spec.field is not None
+        )
+        self._needed: tuple[str, ...] = ()  # the named inputs the bases read, once bound
+        self._prior_variance = config.memory.prior_sd**2  # one prior SD for every term
         self.alerts = ChannelAlerts(self.name, config.alerts, cap=config.cap)
         if self._epoch is not None:
             self._bind(self._epoch)
@@ -258,47 +283,94 @@ class Channel:
 
         A reading not newer than the last one processed is the caller's to skip (the daemon
         counts those as duplicates); here it raises InputError.
+
+        The hot path (issue 10): one pass over the basis gives the row and its slope (the
+        drift at the inputs' means re-evaluates only the terms that read an input); two
+        triangular solves give each variance, so P is never formed; the covariance
+        matrices are read out only for a forecast.
         """
-        if sample.time <= self._last_time:
+        time = sample.time
+        if time <= self._last_time:
             raise InputError(
-                f"reading at {sample.time} is not newer than the last one ({self._last_time})"
+                f"reading at {time} is not newer than the last one ({self._last_time})"
             )
-        self._last_time = sample.time
+        self._last_time = time
         if self._epoch is None:
-            self._bind(sample.time)
-        assert self._basis is not None
-        for spec in self.config.inputs.values():
-            if spec.field is not None and spec.field in sample.fields:
-                self._inputs.put(spec.name, sample.time, sample.fields[spec.field])
-        t = sample.time - (self._epoch or 0.0)
-        covariates, flags, missing = self._covariates(sample.time)
+            self._bind(time)
+        basis = self._basis
+        assert basis is not None
+        fields = sample.fields
+        for name, key in self._payload_inputs:
+            if key in fields:
+                self._inputs.put(name, time, fields[key])
+        t = time - (self._epoch or 0.0)
+        covariates, flags, missing = self._covariates(time)
         if missing:
-            return self._uncorrectable(sample, flags), self.alerts.on_missing(sample.time, flags)
-        phi = self._basis.row(t, covariates)
+            return self._uncorrectable(sample, flags), self.alerts.on_missing(time, flags)
+        here = basis.point(t, covariates)
+        phi = np.array(here[0])
+        phi_squared = float(phi.dot(phi))  # for the finiteness check and the wind-up test
         psi = self._gain.row(t, covariates) if self._gain else None
-        if self._last_useful > -math.inf and sample.time - self._last_useful > self.learn.max_gap:
+        if self._last_useful > -math.inf and time - self._last_useful > self.learn.max_gap:
             flags.append(q.EXTRAPOLATING)  # judged before this sample teaches anything
-        learned, check_error, z = self._learn(sample, t, phi, psi, stale="input_stale" in flags)
+        learned, check_error, z = self._learn(
+            sample, t, phi, psi, phi_squared, stale=q.INPUT_STALE in flags
+        )
         if learned:
-            self._last_useful = sample.time
-        fit = self._read_fit()
-        result = self._correct(sample, t, phi, psi, covariates, flags, learned, fit)
-        self._track_means(sample.time, covariates)
-        health = self._health(flags, phi, psi, fit)
-        if self._established():
-            drift, rate = self._drift_at_means(t, fit)
-            self.last_drift = drift
-            events = self.alerts.observe(
-                result,
-                drift=drift,
-                rate=rate,
-                z=z,
-                check_error=check_error,
-                forecast=self._forecaster(fit),
-                health=health,
-            )
-        else:  # an untrained model's drift and residuals say nothing about the sensor
-            events = self.alerts.observe(
+            self._last_useful = time
+        self._track_means(time, covariates)
+        return self._after_learning(
+            sample, t, here, phi, phi_squared, psi, flags, learned, check_error, z
+        )
+
+    def _after_learning(
+        self,
+        sample: Sample,
+        t: float,
+        here: Point,
+        phi: Array,
+        phi_squared: float,
+        psi: Array | None,
+        flags: list[str],
+        learned: bool,
+        check_error: float | None,
+        z: float | None,
+    ) -> tuple[Corrected, list[Any]]:
+        """Correct the reading with the updated model and feed the alert rules."""
+        estimator = self._estimator
+        # Settled after every reading, so a snapshot taken now continues bit for bit.
+        estimator.settle()
+        theta, sd = estimator.solution()
+        gain_size = self._gain_size
+        offset_theta = theta[gain_size:] if gain_size else theta
+        baseline = float(phi.dot(offset_theta))
+        established = estimator.effective_n >= self._min_samples
+        if psi is None:
+            gain = None
+            corrected = sample.value - baseline
+            row_variance, sandwiched = self._variances(phi)
+        else:
+            gain = float(psi @ theta[:gain_size])
+            corrected = (sample.value - baseline) / gain if gain != 0 else math.nan
+            # delta method: d corrected/d a = −corrected·ψ/g, d corrected/d θ = −φ/g
+            _, sandwiched = self._variances(np.concatenate([corrected * psi, phi]) / gain)
+            row_variance = estimator.spread(np.concatenate([psi, phi]))[0]
+        result = self._correct(
+            sample,
+            baseline=baseline,
+            corrected=corrected,
+            uncertainty=sd * math.sqrt(max(sandwiched, 0.0)),
+            gain=gain,
+            drift_rate=float(np.array(here[1]).dot(offset_theta)),
+            flags=flags,
+            established=established,
+            learned=learned,
+            theta=theta,
+        )
+        health = self._health(flags, phi_squared, psi, row_variance, established)
+        alerts = self.alerts
+        if not established:  # an untrained model's drift and residuals say nothing
+            events = alerts.observe(
                 result,
                 drift=None,
                 rate=None,
@@ -307,9 +379,51 @@ class Channel:
                 forecast=None,
                 health=health,
             )
+            return result, events
+        assert self._basis is not None
+        held = self._basis.point_with(t, self._input_means, here)
+        drift = float(np.array(held[0]).dot(offset_theta))
+        self.last_drift = drift
+        # The rate's uncertainty costs solves, the forecast a covariance read-out: only
+        # for a rule that watches them.
+        watched = alerts.book.rules
+        events = alerts.observe(
+            result,
+            drift=drift,
+            rate=self._rate_at_means(held[1], offset_theta, sd)
+            if "rate_limit" in watched
+            else None,
+            z=z,
+            check_error=check_error,
+            forecast=self._forecaster() if "forecast" in watched else None,
+            health=health,
+        )
         return result, events
 
+    def _variances(self, gradient: Array) -> tuple[float, float]:
+        """(gᵀPg, gᵀ·P(FᵀW²F + prior)P·g), both over σ̂² (see `_Fit`), without forming P.
+
+        In a sliding window the middle is the estimator's own information RᵀR (unit
+        weights), and P·RᵀR·P = P: the second is the first."""
+        estimator = self._estimator
+        plain, solved = estimator.spread(gradient)
+        if self.config.memory.window is not None:
+            return plain, plain
+        # prior information a·diag(prior_sd)⁻², with the channel's one prior_sd
+        precision = estimator.prior_weight / self._prior_variance
+        return plain, self._squared.quadratic(solved, precision)
+
+    def _rate_at_means(self, slope: list[float], offset_theta: Array, sd: float) -> float:
+        """The drift rate with every input at its running mean, as its conservative
+        magnitude (`_conservative_rate`)."""
+        full = np.array([0.0] * self._gain_size + slope)
+        _, sandwiched = self._variances(full)
+        rate = float(full[self._gain_size :].dot(offset_theta))
+        return _conservative_rate(rate, sd * math.sqrt(max(sandwiched, 0.0)))
+
     def _read_fit(self) -> _Fit:
+        """The full read-out, covariance matrices included: for forecasts (at most hourly)
+        and control events, never per reading."""
         estimator = self._estimator
         covariance = estimator.covariance
         prior = np.diag(estimator.prior_weight / estimator.prior_sd**2)
@@ -374,25 +488,27 @@ class Channel:
             return
         self._basis = self.config.basis.with_epoch(epoch)
         self._gain = self.config.gain.with_epoch(epoch) if self.config.gain else None
+        needed = self._basis.variables | (self._gain.variables if self._gain else frozenset())
+        self._needed = tuple(sorted(needed))
 
     def _covariates(self, time: float) -> tuple[dict[str, float], list[str], bool]:
         """Inputs the basis needs: (values, flags, missing). A stale input's last value is
         used and flagged; one never seen makes the reading uncorrectable (QARTOD 9)."""
-        assert self._basis is not None
-        needed = self._basis.variables | (self._gain.variables if self._gain else frozenset())
-        values: dict[str, float] = {}
-        flags: list[str] = []
-        for name in sorted(needed):
-            lookup = self._inputs.lookup(name, time)
-            if lookup.value is None:
-                return {}, [q.INPUT_STALE], True
-            if not lookup.fresh:
-                flags.append(q.INPUT_STALE)
-            values[name] = lookup.value
-        return values, sorted(set(flags)), False
+        found = self._inputs.values(self._needed, time)
+        if found is None:
+            return {}, [q.INPUT_STALE], True
+        values, stale = found
+        return values, [q.INPUT_STALE] if stale else [], False
 
     def _learn(
-        self, sample: Sample, t: float, phi: Array, psi: Array | None, *, stale: bool
+        self,
+        sample: Sample,
+        t: float,
+        phi: Array,
+        psi: Array | None,
+        phi_squared: float,
+        *,
+        stale: bool,
     ) -> tuple[bool, float | None, float | None]:
         """Update the estimator if this sample teaches the baseline.
 
@@ -405,9 +521,16 @@ class Channel:
         target, row, check_error = self._row(sample, phi, psi)
         if row is None:
             return False, None, None
-        established = self._established()
-        weight = self._weight(target - self._estimator.predict(row))
-        innovation = self._estimator.update(row, target, weight, t)
+        estimator = self._estimator
+        established = estimator.effective_n >= self._min_samples
+        if self.learn.mode == "envelope" or self.learn.robust:
+            weight = self._weight(target - estimator.predict(row))
+        else:  # unit weight; refuse the rows `predict` would refuse, as it used to be asked
+            squared = phi_squared if row is phi else float(row.dot(row))
+            if not math.isfinite(squared):
+                raise InputError(_NON_FINITE_ROW)
+            weight = 1.0
+        innovation = estimator.update(row, target, weight, t)
         self._squared.add(row, weight * weight, t)
         if not established:
             check_error = None  # an untrained model's error says nothing about the sensor
@@ -460,7 +583,9 @@ class Channel:
         if set(self._input_means) < self._basis.variables:
             self._reset_estimators()  # never saw the inputs: the shape is unknown anyway
             return
-        drift, _ = self._drift_at_means(time - (self._epoch or 0.0), self._read_fit())
+        theta = self._estimator.coefficients[self._gain_size :]
+        t = time - (self._epoch or 0.0)
+        drift = float(self._basis.row(t, self._input_means) @ theta)
         index = self._gain_size + self._basis.names.index("constant")
         self._estimator.shift(index, -drift)
 
@@ -469,50 +594,40 @@ class Channel:
     def _correct(
         self,
         sample: Sample,
-        t: float,
-        phi: Array,
-        psi: Array | None,
-        covariates: dict[str, float],
+        *,
+        baseline: float,
+        corrected: float,
+        uncertainty: float,
+        gain: float | None,
+        drift_rate: float,
         flags: list[str],
+        established: bool,
         learned: bool,
-        fit: _Fit,
+        theta: Array,
     ) -> Corrected:
-        assert self._basis is not None
-        theta = fit.theta
-        offset_theta = theta[self._gain_size :]
-        baseline = float(phi @ offset_theta)
-        drift_rate = float(self._basis.slope(t, covariates) @ offset_theta)
-        flags = list(flags)
-        established = self._established()
+        """The published reading: quality flags, the cap, the QARTOD summary."""
+        flags = list(flags)  # the caller's list feeds model health, which ignores these
         if not established:
             flags.append(q.LEARNING)
-        if established and self._condition_number() > self.config.ill_conditioned_above:
+        elif self._condition_number() > self.config.ill_conditioned_above:
             flags.append(q.ILL_CONDITIONED)  # while learning, too few samples is expected
-        gain = 1.0
-        if psi is None:
-            gradient = np.concatenate([np.zeros(self._gain_size), phi])
-            corrected = sample.value - baseline
-        else:
-            gain = float(psi @ theta[: self._gain_size])
-            corrected = (sample.value - baseline) / gain if gain != 0 else math.nan
-            # delta method: d corrected/d a = −corrected·ψ/g, d corrected/d θ = −φ/g
-            gradient = np.concatenate([corrected * psi, phi]) / gain
-        uncertainty = fit.uncertainty(gradient)
-        corrected = self._capped(sample.value, corrected, flags)
+        if self.config.cap is not None:
+            corrected = self._capped(sample.value, corrected, flags)
         quality, code = q.summarise(flags)
+        # Positional, in the field order of `Corrected` (this runs once per reading).
         return Corrected(
-            time=sample.time,
-            raw=sample.value,
-            corrected=corrected,
-            baseline=baseline,
-            uncertainty=uncertainty,
-            quality=quality,
-            quality_code=code,
-            flags=tuple(sorted(set(flags))),
-            gain=gain if psi is not None else None,
-            drift_rate=drift_rate,
-            learned=learned,
-            coefficients=theta,
+            sample.time,
+            sample.value,
+            corrected,
+            baseline,
+            uncertainty,
+            quality,
+            code,
+            tuple(sorted(set(flags))) if flags else (),
+            gain,
+            drift_rate,
+            learned,
+            theta,
         )
 
     def _condition_number(self) -> float:
@@ -566,34 +681,25 @@ class Channel:
             previous = self._input_means.get(name, value)
             self._input_means[name] = previous + weight * (first - previous)
 
-    def _drift_at_means(self, t: float, fit: _Fit) -> tuple[float, float]:
-        """Drift and drift rate now, with every input at its running mean.
+    def _forecaster(self) -> Callable[[Array], tuple[Array, Array]]:
+        """Predicted drift and its SD at future (absolute) times, inputs at their means.
 
-        The rate is reported as its conservative magnitude |rate| − RATE_Z·u(rate) (zero if
-        that is negative), keeping its sign: a rate estimate is much noisier than the drift
-        itself, above all soon after learning starts, and a rate alert should mean the
-        drift is significantly that fast.
-        """
-        assert self._basis is not None
-        theta = fit.theta[self._gain_size :]
-        drift = float(self._basis.row(t, self._input_means) @ theta)
-        slope = self._basis.slope(t, self._input_means)
-        rate = float(slope @ theta)
-        full = np.zeros(self.n_terms)
-        full[self._gain_size :] = slope
-        spread = fit.uncertainty(full)
-        if not math.isfinite(spread):
-            return drift, 0.0
-        return drift, math.copysign(max(0.0, abs(rate) - RATE_Z * spread), rate)
-
-    def _forecaster(self, fit: _Fit) -> Callable[[Array], tuple[Array, Array]]:
-        """Predicted drift and its SD at future (absolute) times, inputs at their means."""
+        The covariance read-out it needs is made on the first call, so the function is
+        only valid until the channel's next reading or control event (the alert rules and
+        `forecast` call it at once); a later call raises RuntimeError."""
         basis, start = self._basis, self._gain_size
         epoch = self._epoch or 0.0
         held_at = dict(self._input_means)
+        made_at = (self._last_time, self._estimator)
+        fits: list[_Fit] = []
 
         def predict(times: Array) -> tuple[Array, Array]:
             assert basis is not None
+            if made_at != (self._last_time, self._estimator):
+                raise RuntimeError("a drift forecast is valid only until the next reading")
+            if not fits:
+                fits.append(self._read_fit())
+            fit = fits[0]
             held = {name: np.full(times.shape[0], mean) for name, mean in held_at.items()}
             rows = basis.evaluate(times - epoch, held)
             full = np.zeros((rows.shape[0], self.n_terms))
@@ -609,28 +715,37 @@ class Channel:
         if limit is None or self._basis is None or not math.isfinite(self._last_time):
             return None
         times = np.linspace(self._last_time, self._last_time + horizon, FORECAST_POINTS)
-        mean, spread = self._forecaster(self._read_fit())(times)
+        mean, spread = self._forecaster()(times)
         if not (np.all(np.isfinite(mean)) and np.all(np.isfinite(spread))):
             return None
         z = NormalDist().inv_cdf(0.5 + confidence / 2)
         return crossing_time(times, mean, spread, limit, z)
 
-    def _health(self, flags: list[str], phi: Array, psi: Array | None, fit: _Fit) -> list[str]:
+    def _health(
+        self,
+        flags: list[str],
+        phi_squared: float,
+        psi: Array | None,
+        row_variance: float,
+        established: bool,
+    ) -> list[str]:
+        """Model problems for the model_health rule; `row_variance` is rowᵀP·row for the
+        reading's row φ, or [ψ, φ] with a gain (`phi_squared` = ‖φ‖²)."""
         problems = [flag for flag in flags if flag in (q.INPUT_STALE, q.ILL_CONDITIONED)]
-        if self._last_time - self._last_useful > self.learn.max_gap and self._established():
+        if not established:
+            return problems  # still learning: that is the 'learning' flag, not wind-up
+        if self._last_time - self._last_useful > self.learn.max_gap:
             problems.append("no_useful_sample")
-        if self._wound_up(phi, psi, fit):
+        if self._wound_up(phi_squared, psi, row_variance):
             problems.append("wind_up")
         return problems
 
-    def _wound_up(self, phi: Array, psi: Array | None, fit: _Fit) -> bool:
+    def _wound_up(self, phi_squared: float, psi: Array | None, row_variance: float) -> bool:
         """The data no longer pin the baseline down: its variance has grown back to a quarter
         of what the prior alone allows (the prior itself bounds it, see the estimator)."""
-        if self._estimator.effective_n < self._min_samples:
-            return False  # still learning: that is the 'learning' flag, not wind-up
-        row = phi if psi is None else np.concatenate([psi, phi])
-        prior_only = float(np.sum((self._estimator.prior_sd * row) ** 2))
-        return float(row @ fit.covariance @ row) > 0.25 * prior_only
+        squared = phi_squared if psi is None else phi_squared + float(psi.dot(psi))
+        prior_only = self._prior_variance * squared  # Σ(sd·rowᵢ)² of the row, one sd
+        return row_variance > 0.25 * prior_only
 
     # --- state --------------------------------------------------------------------------
 
@@ -705,8 +820,7 @@ class Channel:
         `_pack_scalars` / `_pack_side` wrote, with its unpacked estimator and squared
         information. Copying the settings is what makes restoring 10,000 channels fast;
         every attribute that holds learned state is set anew in `_unpack`."""
-        channel = object.__new__(Channel)
-        channel.__dict__.update(self.__dict__)
+        channel = shallow_copy(self)
         channel.name = name
         channel.alerts = self.alerts.blank_copy(name)
         channel._inputs = self._inputs.blank_copy()
@@ -895,6 +1009,16 @@ def _unpacked(config: ChannelConfig, names: Sequence[str], packed: PackedChannel
         information._time = optional(squared_time[i])
         channels.append(blank.restored_copy(name, scalars[i], information, estimators[i], sides[i]))
     return channels
+
+
+def _conservative_rate(rate: float, spread: float) -> float:
+    """The drift rate as its conservative magnitude |rate| − RATE_Z·u(rate) (zero if that is
+    negative), keeping its sign: a rate estimate is much noisier than the drift itself,
+    above all soon after learning starts, and a rate alert should mean the drift is
+    significantly that fast. An undefined u(rate) gives zero."""
+    if not math.isfinite(spread):
+        return 0.0
+    return math.copysign(max(0.0, abs(rate) - RATE_Z * spread), rate)
 
 
 def _standardised(innovation: Any) -> float | None:

@@ -27,6 +27,7 @@ from zeroline.alert_rules import (
 )
 from zeroline.alerts import AlertEvent
 from zeroline.config import AlertConfig
+from zeroline.objects import shallow_copy
 
 Array = npt.NDArray[np.float64]
 Forecaster = Callable[[Array], tuple[Array, Array]]
@@ -126,6 +127,8 @@ def _prototype_book(config: AlertConfig, cap: float | None) -> AlertBook:
 class ChannelAlerts:
     """A channel's alert book plus the glue from corrected readings to rule inputs."""
 
+    __slots__ = ("book",)
+
     def __init__(self, channel: str, config: AlertConfig, *, cap: float | None) -> None:
         self.book = _prototype_book(config, cap).blank_copy(channel)
 
@@ -171,8 +174,7 @@ class ChannelAlerts:
 
     def blank_copy(self, channel: str) -> ChannelAlerts:
         """The same rules for `channel`, all clear (see `AlertBook.blank_copy`)."""
-        new = object.__new__(ChannelAlerts)
-        new.__dict__.update(self.__dict__)
+        new = shallow_copy(self)
         new.book = self.book.blank_copy(channel)
         return new
 

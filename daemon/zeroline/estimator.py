@@ -90,6 +90,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy.linalg import lapack
 
 from zeroline.errors import InputError
+from zeroline.objects import shallow_copy
 from zeroline.state_layout import number, optional
 
 if TYPE_CHECKING:  # the replay module imports this one; at run time see __getattr__ below
@@ -183,6 +184,45 @@ class RecursiveEstimator:
     True
     """
 
+    __slots__ = (
+        "_back",
+        "_back_rows",
+        "_checkpoints",
+        "_count",
+        "_f",
+        "_front_rows",
+        "_front_times",
+        "_front_weights",
+        "_g",
+        "_g_time",
+        "_head",
+        "_information",
+        "_inner",
+        "_inner_block",
+        "_penalty",
+        "_prior_center",
+        "_prior_ref_time",
+        "_prior_ref_weight",
+        "_prior_root",
+        "_prior_rows",
+        "_r",
+        "_row",
+        "_row_x",
+        "_scale",
+        "_scale_outer",
+        "_shape",
+        "_theta",
+        "_time",
+        "_top_up_after",
+        "_z",
+        "column_scale",
+        "half_life",
+        "n_terms",
+        "prior_mean",
+        "prior_sd",
+        "window",
+    )
+
     def __init__(
         self,
         n_terms: int,
@@ -272,6 +312,15 @@ class RecursiveEstimator:
         self._z = self._f[:p, p]
         self._g, self._g_time = 1.0, self._time
         self._changed()
+
+    def settle(self) -> None:
+        """Multiply the pending forgetting into the factor now (see `_factor`).
+
+        Afterwards the state is exactly what `to_state` saves, so a caller that settles
+        after every update (the channel does) continues bit for bit the same after a
+        snapshot round trip. Costs one pass over the (p+1)² factor.
+        """
+        self._settle()
 
     def _settle(self) -> None:
         """Multiply the pending forgetting g into G, so that G = F."""
@@ -540,7 +589,19 @@ class RecursiveEstimator:
     @property
     def coefficients(self) -> FloatArray:
         """θ in the user's units (internal column scaling undone); a new array each call."""
-        return self._solution() / self._scale
+        theta = self._solution()
+        # Copied, not divided by ones, when there is no column scale: the same numbers.
+        result: FloatArray = theta.copy() if self.column_scale is None else theta / self._scale
+        return result
+
+    def solution(self) -> tuple[FloatArray, float]:
+        """(`coefficients`, `residual_sd`) in one call: what the channel reads after every
+        update (θ is solved once per change of the factor either way)."""
+        theta, penalty = self._solved()
+        coefficients = theta.copy() if self.column_scale is None else theta / self._scale
+        if self._count <= self.n_terms:
+            return coefficients, math.nan
+        return coefficients, self._residual_sd(penalty)
 
     @property
     def covariance(self) -> FloatArray:
@@ -561,6 +622,24 @@ class RecursiveEstimator:
         """
         a = _dtrtrs(self._r, self._internal(phi), 0, 1)[0]
         return float(a.dot(a)) / (self._g * self._g)
+
+    def spread(self, phi: FloatArray) -> tuple[float, FloatArray]:
+        """(φᵀPφ, P·φ) for one row φ in the user's units, *not* multiplied by σ̂².
+
+        Two triangular solves: a = R⁻ᵀφ gives φᵀPφ = ‖a‖² (as `variance`) and Pφ = R⁻¹a,
+        so P is never formed (that costs an inversion and two products, and squares the
+        condition number before the quadratic form is taken). The channel needs both for
+        its uncertainties after every reading.
+        """
+        x = phi if self.column_scale is None else phi / self._scale
+        a = _dtrtrs(self._r, x, 0, 1)[0]  # G⁻ᵀx = g·R⁻ᵀx (R = g·G, see `_factor`)
+        g2 = self._g * self._g
+        solved: FloatArray = _dtrtrs(self._r, a, 0, 0)[0]  # G⁻¹G⁻ᵀx = g²·P·x
+        if self.column_scale is not None:
+            solved /= g2 * self._scale
+        elif g2 != 1.0:  # the channel settles g into G after every reading
+            solved /= g2
+        return float(a.dot(a)) / g2, solved
 
     def information_matrix(self) -> FloatArray:
         """info = RᵀR = Σ w·2^(−age/h)·φφᵀ + prior, in the user's units.
@@ -584,7 +663,7 @@ class RecursiveEstimator:
         p = self.n_terms
         if self._count <= p:
             return math.nan
-        rho = self._g * self._f[p, p]
+        rho = self._g * self._f.item(p, p)  # a Python float: cheaper arithmetic, same bits
         rss = rho * rho - self.prior_weight * penalty
         return math.sqrt(max(rss, 0.0) / (self._count - p))
 
@@ -597,7 +676,12 @@ class RecursiveEstimator:
         p = self.n_terms
         r = self._factor[:p, :p]
         norms = np.sqrt(np.sum(r * r, axis=0))
-        return float(np.linalg.cond(r / norms))
+        # np.linalg.cond's own 2-norm formula σ_max/σ_min (a singular R gives inf, 0/0 too),
+        # without its wrapper's general-case checks
+        singular = np.linalg.svd(r / norms, compute_uv=False)
+        with np.errstate(all="ignore"):
+            ratio = float(singular[0] / singular[-1])
+        return math.inf if math.isnan(ratio) else ratio
 
     def shift(self, term: int, delta: float) -> None:
         """Re-zero: add `delta` to coefficient `term` keeping every other coefficient and P.
@@ -692,8 +776,7 @@ class RecursiveEstimator:
         Arrays that any method changes in place are the copy's own.
         """
         p = self.n_terms
-        new = object.__new__(RecursiveEstimator)
-        new.__dict__.update(self.__dict__)
+        new = shallow_copy(self)
         # Arrays that methods change in place are the copy's own (`shift` changes the
         # prior rows and centre, LAPACK the factor and the scratch row).
         new._prior_rows = np.array(self._prior_rows, order="F")
@@ -860,11 +943,9 @@ def unpack_estimators(
     scratch = np.zeros((n, 1, p + 1))
     valid = (solution[:, 0] == 1.0).tolist()
     penalties = solution[:, 1].tolist()
-    shared = prototype.__dict__
     result = []
     for i, (g, g_time, time, ref_weight, ref_time, count, information) in enumerate(clock.tolist()):
-        est = object.__new__(RecursiveEstimator)
-        est.__dict__.update(shared)
+        est = shallow_copy(prototype)
         est._prior_rows = prior_rows[i].T
         est._prior_center = prior_center[i]
         est._row = scratch[i]

@@ -10,26 +10,30 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 
-@dataclass(frozen=True)
-class InputValue:
+class InputValue(NamedTuple):
+    """One value of an input and its time (a tuple: one is stored per arriving value)."""
+
     time: float
     value: float
 
 
-@dataclass(frozen=True)
-class Lookup:
+class Lookup(NamedTuple):
     """What a reading gets for one input: the value to use, and whether it was fresh."""
 
     value: float | None
     fresh: bool
 
 
+_NEVER_SEEN = Lookup(None, False)
+
+
 class InputCache:
     """Latest value per input name; bounded by the number of declared inputs."""
+
+    __slots__ = ("_latest", "max_ages")
 
     def __init__(self, max_ages: dict[str, float]) -> None:
         self.max_ages = dict(max_ages)
@@ -45,9 +49,24 @@ class InputCache:
         """The value of `name` for a reading at time `at`."""
         latest = self._latest.get(name)
         if latest is None:
-            return Lookup(None, False)
+            return _NEVER_SEEN
         age = at - latest.time
         return Lookup(latest.value, 0.0 <= age <= self.max_ages[name])
+
+    def values(self, names: tuple[str, ...], at: float) -> tuple[dict[str, float], bool] | None:
+        """`lookup` for several names at once (once per reading): their values and whether
+        any is stale, or None if one was never seen."""
+        values: dict[str, float] = {}
+        stale = False
+        latest, max_ages = self._latest, self.max_ages
+        for name in names:
+            known = latest.get(name)
+            if known is None:
+                return None
+            values[name] = known.value
+            age = at - known.time
+            stale = stale or not 0.0 <= age <= max_ages[name]
+        return values, stale
 
     def to_state(self) -> dict[str, Any]:
         return {name: [v.time, v.value] for name, v in self._latest.items()}
@@ -62,7 +81,7 @@ class InputCache:
     def blank_copy(self) -> InputCache:
         """The same inputs, no values yet (the ages are shared: nothing changes them)."""
         new = object.__new__(InputCache)
-        new.__dict__.update(self.__dict__)
+        new.max_ages = self.max_ages
         new._latest = {}
         return new
 

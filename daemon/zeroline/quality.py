@@ -34,6 +34,8 @@ QUALITY_VALUES = (OK, *SEVERITY_ORDER)
 
 def summarise(flags: Iterable[str], *, missing: bool = False) -> tuple[str, int]:
     """(quality, QARTOD code) for a set of flags; `missing` when no correction was possible."""
+    if not missing and isinstance(flags, (list, tuple)) and not flags:
+        return OK, QARTOD_PASS  # the common case, once per reading
     present = set(flags)
     quality = next((flag for flag in SEVERITY_ORDER if flag in present), OK)
     if missing:
