@@ -550,9 +550,11 @@ class RecursiveEstimator:
             factor = self._checkpoints[block + 1].copy(order="F")
             inner = []
             for index in range(last - 1, first - 1, -1):
-                factor = _absorb(
-                    factor.copy(order="F"), np.asfortranarray(self._front_rows[index : index + 1])
-                )
+                # A copy of the row: LAPACK overwrites what it absorbs, and a one-row slice
+                # is already Fortran-contiguous, so asfortranarray would hand over the row
+                # itself (the window's rows are read again by `shift` and `to_state`).
+                row = np.array(self._front_rows[index : index + 1], order="F")
+                factor = _absorb(factor.copy(order="F"), row)
                 inner.append(factor)
             self._inner = inner[::-1]
             self._inner_block = block
@@ -800,9 +802,8 @@ class RecursiveEstimator:
             "front_rows": self._front_rows.tolist(),
             "head": self._head,
             "checkpoints": [c.tolist() for c in self._checkpoints],
-            # The suffixes of the head's block are kept as computed: rebuilding them would
-            # need that block's rows, which `_front_suffix` has consumed (LAPACK overwrites
-            # the rows it absorbs).
+            # The suffixes of the head's block are kept as computed (rebuilding them from
+            # the rows would round differently).
             "inner": [c.tolist() for c in self._inner],
             "inner_block": self._inner_block,
         }
