@@ -104,7 +104,7 @@ def test_unacknowledged_readings_come_back_acknowledged_do_not(
     received: list[Message] = []
     link = SocketBroker(config)
     link.connect(received.append, lambda: link.subscribe(["in/#"]))
-    time.sleep(0.3)  # SUBACK
+    assert wait_until(lambda: not link._subscriptions, 5)  # SUBACK: the filter is in place
     other = PahoSide(broker.port)
     for i in range(6):
         other.publish(f"in/{i}", str(i).encode())
@@ -132,6 +132,7 @@ def test_reconnects_after_a_broker_restart_and_sends_what_waited(mosquitto_bin: 
     link = SocketBroker(settings(server.port, "5"))
     link.connect(received.append, lambda: link.subscribe(["in/#"]))
     try:
+        assert wait_until(lambda: not link._subscriptions, 5)  # SUBACK
         other = PahoSide(server.port)
         other.publish("in/a", b"1")
         assert wait_until(lambda: len(received) == 1, 5)
