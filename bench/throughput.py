@@ -104,7 +104,11 @@ def run_round(
         out_filter = "zeroline/+/corrected"
         directory = temporary_directory("zl-bench-tp-")
         config = write_config(
-            directory, broker.port, topic=f"{root}/+/gas", client_id=f"zl-bench-{index}"
+            directory,
+            broker.port,
+            topic=f"{root}/+/gas",
+            client_id=f"zl-bench-{index}",
+            inflight=args.inflight,
         )
         process = Daemon(config)
         process.start()
@@ -175,6 +179,7 @@ def main() -> int:
     parser.add_argument("--per-channel", type=int, default=20)
     parser.add_argument("--rounds", type=int, default=2)
     parser.add_argument("--profile", metavar="DIR")
+    parser.add_argument("--inflight", type=int, default=100, help="the daemon's broker.inflight")
     args = parser.parse_args()
     print(machine())
     broker = start_broker()

@@ -74,6 +74,7 @@ def test_outputs_arrive_in_order_and_are_confirmed(broker: Mosquitto, protocol: 
     link.connect(lambda message: None, lambda: None)
     try:
         sequences = [link.publish(f"out/{i % 7}", str(i).encode()) for i in range(500)]
+        link.flush()
         assert len(link._inflight) <= 10  # the window (broker.inflight) is never exceeded
         assert wait_until(lambda: link.confirmed() >= sequences[-1], 10)
         assert wait_until(lambda: len(other.received) >= 500, 10)
@@ -140,6 +141,7 @@ def test_reconnects_after_a_broker_restart_and_sends_what_waited(mosquitto_bin: 
         old_token = received[0].token
         server.stop()
         waiting = link.publish("out/x", b"while away")
+        link.flush()
         assert link.confirmed() < waiting
         server.start()
         assert wait_until(lambda: link.reconnects == 1, 15)
@@ -151,6 +153,37 @@ def test_reconnects_after_a_broker_restart_and_sends_what_waited(mosquitto_bin: 
     finally:
         link.close()
         server.cleanup()
+
+
+def test_publish_waits_for_flush() -> None:
+    """Outputs leave in one wake-up per batch: nothing is sent before flush()."""
+    sent: list[bytes] = []
+
+    def script(connection: socket.socket, index: int) -> None:
+        connection.sendall(b"\x20\x02\x00\x00")
+        connection.settimeout(5)
+        while True:
+            data = connection.recv(65536)
+            if not data:
+                return
+            sent.append(data)
+
+    scripted = ScriptedBroker(script)
+    link = SocketBroker(settings(scripted.port, "3.1.1"))
+    link.connect(lambda message: None, lambda: None)
+    try:
+        assert wait_until(lambda: any(b"online" in d for d in sent), 5)
+        before = b"".join(sent)
+        link.publish("o", b"first")
+        link.publish("o", b"second")
+        time.sleep(0.3)
+        assert b"".join(sent) == before
+        link.flush()
+        assert wait_until(lambda: b"second" in b"".join(sent), 5)
+        assert b"".join(sent).index(b"first") < b"".join(sent).index(b"second")
+    finally:
+        link.close()
+        scripted.close()
 
 
 def test_wrong_password_is_a_one_line_refusal(mosquitto_bin: str) -> None:
@@ -235,6 +268,7 @@ def test_a_publish_lost_with_the_connection_is_sent_again_marked_dup() -> None:
     link.connect(lambda message: None, lambda: None)
     try:
         sequence = link.publish("o", b"reading")
+        link.flush()
         assert wait_until(lambda: link.confirmed() >= sequence, 10), scripted.errors
         first, second = seen[0], seen[1]
         assert first[0] == 0 and not first[3]

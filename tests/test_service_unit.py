@@ -77,6 +77,9 @@ class FakeBroker:
         with self._lock:
             self._confirmed = self._sequence
 
+    def flush(self) -> None:
+        """Publishes are recorded at once: nothing to send."""
+
     def confirmed(self) -> int:
         with self._lock:
             return self._confirmed

@@ -2,7 +2,9 @@
 
 `BrokerLink` is the whole interface the service uses (connect, subscribe, unsubscribe,
 publish, confirmed, ack, close), so unit tests drive the service with a fake broker and the
-integration tests with a real Mosquitto through `SocketBroker`.
+integration tests with a real Mosquitto through `SocketBroker`. `publish` only queues: the
+worker calls `flush` once per batch, so a batch of outputs costs one wake-up of the network
+thread and one `sendall`.
 
 Why an own client. A corrected reading costs the model a few tens of microseconds; a
 general-purpose client (paho-mqtt, measured here: ~74 µs of CPU per relayed message) costs
@@ -114,6 +116,9 @@ class BrokerLink(Protocol):
 
     def publish(self, topic: str, payload: bytes, *, retain: bool = False) -> int:
         """Queue a QoS 1 publish; returns its sequence number (1, 2, …)."""
+
+    def flush(self) -> None:
+        """Send what `publish` queued (the worker calls it once per batch of messages)."""
 
     def confirmed(self) -> int:
         """Highest sequence number up to which every publish is acknowledged by the broker."""
@@ -256,18 +261,29 @@ class _Connection:
 
     # --- any thread -----------------------------------------------------------------------
 
-    def send(self, frame: bytes, generation: int | None = None) -> bool:
+    def send(self, frame: bytes, generation: int | None = None, *, wake: bool = True) -> bool:
         """Queue a frame for the network thread; with `generation`, only if the connection
-        is still that one (an acknowledgement must not reach a later connection)."""
+        is still that one (an acknowledgement must not reach a later connection). With
+        `wake=False` it waits for the next `wake()` (or whatever else wakes the thread)."""
         with self._lock:
             if generation is not None and generation != self.generation:
                 return False
-            wake = not self._frames
+            first = not self._frames
             self._frames.append(frame)
-        if wake:
-            with contextlib.suppress(OSError):  # a full pair already holds a wake-up
-                self._wake_write.send(b"\0")
+        if wake and first:
+            self._wake()
         return True
+
+    def wake(self) -> None:
+        """Have the network thread send what is queued."""
+        with self._lock:
+            if not self._frames:
+                return
+        self._wake()
+
+    def _wake(self) -> None:
+        with contextlib.suppress(OSError):  # a full pair already holds a wake-up
+            self._wake_write.send(b"\0")
 
     def start(self) -> None:
         """Connect (retrying an absent broker), then serve on a network thread."""
@@ -602,9 +618,12 @@ class SocketBroker:
             self._unconfirmed.append(sequence)
             self._waiting.append((sequence, topic.encode(), payload, retain))
             frames = self._admit()
-            if frames:
-                self._output.send(b"".join(frames))
+            if frames:  # sent at the next flush(): one wake-up per batch, not per output
+                self._output.send(b"".join(frames), wake=False)
         return sequence
+
+    def flush(self) -> None:
+        self._output.wake()
 
     def confirmed(self) -> int:
         with self._lock:
@@ -624,6 +643,7 @@ class SocketBroker:
         self._input.stop()
         if self._output.connected.is_set():
             sequence = self.publish(self.settings.status_topic, b"offline", retain=True)
+            self.flush()
             deadline = time.monotonic() + CLOSE_TIMEOUT_S
             while self.confirmed() < sequence and time.monotonic() < deadline:
                 time.sleep(0.005)

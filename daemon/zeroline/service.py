@@ -320,12 +320,14 @@ class Service:
                 work = None
         if work is not None:
             self._handle(work)
-        # Let the link's network threads have the interpreter now: they send what this
-        # batch published. Without it they would wait up to the interpreter's switch
+        # Send what this batch published, and let the link's network thread have the
+        # interpreter now: without it, it would wait up to the interpreter's switch
         # interval (5 ms) for the worker to block, which is latency on every output.
+        self.broker.flush()
         time.sleep(0)
         self._commit(force=False)
-        self._publish_stats()
+        if self._publish_stats():
+            self.broker.flush()
 
     def _finish(self) -> None:
         if self._quiesce(timeout=QUIESCE_TIMEOUT_S * 2):
@@ -509,15 +511,17 @@ class Service:
         }
         self._publish(f"{self.prefix}/error", body)
 
-    def _publish_stats(self) -> None:
+    def _publish_stats(self) -> bool:
+        """The counters on `<prefix>/stats` every STATS_EVERY_S; True if published."""
         now = time.monotonic()
         if now - self._last_stats < STATS_EVERY_S:
-            return
+            return False
         self._last_stats = now
         stats = {**self.counters.as_dict(), "channels": len(self.table.channels)}
         stats["queue"] = self._queue.qsize()
         stats["awaiting_commit"] = len(self._awaiting) + self._committer.pending()
         self._publish(f"{self.prefix}/stats", stats, retain=True)
+        return True
 
     # --- commits and snapshots ------------------------------------------------------------
 
