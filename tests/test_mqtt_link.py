@@ -112,6 +112,7 @@ def test_unacknowledged_readings_come_back_acknowledged_do_not(
     assert wait_until(lambda: len(received) == 6, 5)
     for message in received[:3]:
         link.ack(message.token)
+    link.flush()
     time.sleep(0.3)
     link.close()
     again: list[Message] = []

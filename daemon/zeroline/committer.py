@@ -44,8 +44,9 @@ class Committer:
         append: Callable[[list[dict[str, Any]]], None],
         ack: Callable[[Any], None],
         count: Callable[[str, int], None],
+        flush: Callable[[], None] = lambda: None,
     ) -> None:
-        self._append, self._ack, self._count = append, ack, count
+        self._append, self._ack, self._count, self._flush = append, ack, count, flush
         self._batches: deque[Batch] = deque()
         self._pending = 0  # messages submitted but not yet acknowledged
         self._condition = threading.Condition()
@@ -94,6 +95,7 @@ class Committer:
             for token in batch.tokens:
                 if token is not None:
                     self._ack(token)
+            self._flush()  # the batch's acknowledgements leave together
             self._count("journal_records", len(batch.records))
             self._count("acked", len(batch.tokens))
             with self._condition:

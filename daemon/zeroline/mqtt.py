@@ -118,7 +118,7 @@ class BrokerLink(Protocol):
         """Queue a QoS 1 publish; returns its sequence number (1, 2, …)."""
 
     def flush(self) -> None:
-        """Send what `publish` queued (the worker calls it once per batch of messages)."""
+        """Send what `publish` and `ack` queued (called once per batch of them)."""
 
     def confirmed(self) -> int:
         """Highest sequence number up to which every publish is acknowledged by the broker."""
@@ -624,6 +624,7 @@ class SocketBroker:
 
     def flush(self) -> None:
         self._output.wake()
+        self._input.wake()
 
     def confirmed(self) -> int:
         with self._lock:
@@ -636,8 +637,8 @@ class SocketBroker:
         generation, packet_id, qos = token
         # A message received on an earlier connection will be (or was) redelivered with the
         # same packet id; acking the old delivery now could ack an unrelated later message.
-        if qos > 0:
-            self._input.send(wire.puback(packet_id), generation)
+        if qos > 0:  # sent at the next flush(), with the rest of the batch
+            self._input.send(wire.puback(packet_id), generation, wake=False)
 
     def close(self) -> None:
         self._input.stop()

@@ -202,6 +202,7 @@ class Service:
             lambda records: self.store.append_journal(records),
             lambda token: self.broker.ack(token),
             self.counters.add,
+            lambda: self.broker.flush(),
         )
         self._commit_batch = max(1, int(config.broker["inflight"]) // 2)
         self._live = False  # False while replaying the journal: no outputs then
