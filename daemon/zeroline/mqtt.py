@@ -50,11 +50,13 @@ CA does not vouch for, a refused user name or password, a missing password file.
 that is merely not there yet is retried with backoff: a gateway often boots before its
 broker. The password is never logged or put in an error message.
 
-Threads and locks: each connection has one network thread that does all of its socket I/O
-(an OpenSSL connection must not be read and written from two threads at once). Other
-threads only append frames under the connection's lock and wake it through a socket pair,
-once per batch (only when the queue of frames was empty). Callbacks (`on_message`, the
-connect handlers) run on the network thread without the lock held.
+Threads and locks: each connection has one network thread that reads it, reconnects it and
+sends its own packets. Other threads append frames under the connection's lock; `flush`
+then sends them once per batch: on plain TCP directly from the calling thread (under a send
+lock shared with the network thread; writing while another thread reads is safe on a TCP
+socket), on TLS by waking the network thread through a socket pair (an OpenSSL connection
+must not be used by two threads at once). Callbacks (`on_message`, the connect handlers)
+run on the network thread without a lock held.
 """
 
 from __future__ import annotations
@@ -255,6 +257,9 @@ class _Connection:
         self._wake_write.setblocking(False)
         self._stopping = threading.Event()
         self._thread: threading.Thread | None = None
+        self._send_lock = threading.Lock()  # one writer at a time on the socket
+        self._direct: socket.socket | None = None  # while serving plain TCP: see wake()
+        self._last_sent = 0.0
         self._lost_at: float | None = None
         self._reader = wire.PacketReader(v5=self.v5)
         self._problems = RateLimitedLogger(_log, interval_s=30.0)
@@ -271,15 +276,43 @@ class _Connection:
             first = not self._frames
             self._frames.append(frame)
         if wake and first:
-            self._wake()
+            self.wake()
         return True
 
     def wake(self) -> None:
-        """Have the network thread send what is queued."""
-        with self._lock:
-            if not self._frames:
+        """Send what is queued: on a plain TCP connection from this thread (writing while
+        the network thread reads is safe there, and it saves a thread hop per batch); on
+        TLS by waking the network thread (OpenSSL allows one thread at a time)."""
+        direct = self._direct
+        if direct is None:
+            with self._lock:
+                if not self._frames:
+                    return
+            self._wake()
+            return
+        with self._send_lock:
+            if self._direct is not direct:  # lost meanwhile: the network thread takes over
+                self._wake()
                 return
-        self._wake()
+            self._send_queued(direct)
+
+    def _send_queued(self, sock: socket.socket) -> None:
+        """Send every queued frame (caller holds _send_lock). A failure shuts the socket
+        so the network thread notices, drops the connection and reconnects: a publish
+        is resent from the in-flight record then, an acknowledgement is void anyway."""
+        with self._lock:
+            frames, self._frames = self._frames, []
+        if not frames:
+            return
+        try:
+            sock.sendall(b"".join(frames))
+        except OSError:
+            if threading.current_thread() is self._thread:
+                raise
+            with contextlib.suppress(OSError):
+                sock.shutdown(socket.SHUT_RDWR)
+            return
+        self._last_sent = time.monotonic()
 
     def _wake(self) -> None:
         with contextlib.suppress(OSError):  # a full pair already holds a wake-up
@@ -297,7 +330,7 @@ class _Connection:
         """Send what is queued plus `final`, close, and end the network thread."""
         self.send(final)
         self._stopping.set()
-        self.send(b"")  # wakes the thread
+        self._wake()  # the network thread, whichever way frames are sent
         if self._thread is not None:
             self._thread.join(CLOSE_TIMEOUT_S)
         self._wake_read.close()
@@ -430,28 +463,34 @@ class _Connection:
             sock = reconnected
 
     def _serve(self, sock: socket.socket) -> None:
+        self._last_sent = time.monotonic()
+        if not isinstance(sock, ssl.SSLSocket):
+            self._direct = sock
+        try:
+            self._serve_loop(sock)
+        finally:
+            with self._send_lock:
+                self._direct = None
+
+    def _serve_loop(self, sock: socket.socket) -> None:
         reader = self._reader
         keepalive = float(self.settings.keepalive)
         poller = select.poll()
         poller.register(sock, select.POLLIN)
         poller.register(self._wake_read, select.POLLIN)
         wake_fd = self._wake_read.fileno()
-        last_sent = last_heard = time.monotonic()
+        last_heard = time.monotonic()
         while True:
-            with self._lock:
-                frames, self._frames = self._frames, []
-            if frames:
-                sock.sendall(b"".join(frames))
-                last_sent = time.monotonic()
+            with self._send_lock:
+                self._send_queued(sock)
             if self._stopping.is_set():
-                with self._lock:  # what stop() queued last (DISCONNECT)
-                    frames, self._frames = self._frames, []
-                sock.sendall(b"".join(frames))
+                with self._send_lock:  # what stop() queued last (DISCONNECT)
+                    self._send_queued(sock)
                 return
             if isinstance(sock, ssl.SSLSocket) and sock.pending():
                 events = [(sock.fileno(), select.POLLIN)]
             else:
-                wait = max(0.0, last_sent + keepalive / 2 - time.monotonic())
+                wait = max(0.0, self._last_sent + keepalive / 2 - time.monotonic())
                 events = poller.poll(1000 * wait)
             readable = False
             for fd, _ in events:
@@ -468,8 +507,8 @@ class _Connection:
                 last_heard = now
                 for packet in reader.feed(data):
                     self._dispatch(packet)
-            elif now - last_sent >= keepalive / 2:
-                self.send(wire.PINGREQ_FRAME)
+            elif now - self._last_sent >= keepalive / 2:
+                self.send(wire.PINGREQ_FRAME, wake=False)  # sent at the top of the loop
             if now - last_heard > 2 * keepalive:
                 raise TimeoutError(f"no packet from the broker for {now - last_heard:.0f} s")
 
