@@ -256,8 +256,15 @@ class ChannelTable:
     def get(self, name: str) -> Channel | None:
         return self.channels.get(name)
 
-    def create(self, template: str, wildcards: tuple[str, ...]) -> Channel | None:
-        """The channel for `template` at `wildcards`, created if new; None at the bound."""
+    def create(
+        self, template: str, wildcards: tuple[str, ...], name: str | None = None
+    ) -> Channel | None:
+        """The channel for `template` at `wildcards` (named `name` if the caller has filled
+        it in already, as `Routes.match` does), created if new; None at the bound."""
+        if name is not None:
+            channel = self.channels.get(name)
+            if channel is not None:  # the per-reading case: no template filling
+                return channel
         config = self.routes.templates[template]
         name = fill(config.name, wildcards)
         channel = self.channels.get(name)

@@ -381,7 +381,7 @@ class Service:
                 "templates names that cannot collide",
             )
             return None
-        channel = self.table.create(part.template, part.wildcards)
+        channel = self.table.create(part.template, part.wildcards, part.name)
         if channel is None:
             self._error(
                 message,

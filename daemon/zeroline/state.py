@@ -91,6 +91,7 @@ SNAPSHOT_NAME = "snapshot.bin"
 LEGACY_SNAPSHOT_NAME = "snapshot.json"
 LEGACY_SNAPSHOT_VERSION = 1
 JOURNAL_NAME = "journal.jsonl"
+_JOURNAL_ENCODER = json.JSONEncoder(separators=(",", ":"))  # one, not one per record
 MAGIC = b"zeroline-snapshot\n"
 _PREFIX = struct.Struct("<IIQQ")  # version, CRC-32 of the rest, header bytes, payload bytes
 _FLOAT = np.dtype("<f8")
@@ -225,7 +226,8 @@ class StateStore:
         """Append records and fsync: when this returns they survive a power cut."""
         if not records:
             return
-        data = "".join(json.dumps(record, separators=(",", ":")) + "\n" for record in records)
+        encode = _JOURNAL_ENCODER.encode
+        data = "".join(encode(record) + "\n" for record in records)
         start = self._journal.seek(0, os.SEEK_END)
         try:
             view = memoryview(data.encode())
