@@ -101,7 +101,7 @@ from zeroline.state import Snapshot, SnapshotGroup, StateStore
 _log = logging.getLogger(__name__)
 
 COMMIT_DELAY_S = 0.1  # longest a processed message waits for its journal fsync
-IDLE_COMMIT_S = 0.005  # a quiet queue commits what waited this long (fsyncs stay batched)
+IDLE_COMMIT_S = 0.02  # a quiet queue commits what waited this long (fsyncs stay batched)
 QUIESCE_TIMEOUT_S = 2.0  # longest the worker pauses for a snapshot before trying later
 JOURNAL_SNAPSHOT_RECORDS = 10_000  # replaying more at start-up would take over ~4 s
 STATS_EVERY_S = 1.0
