@@ -84,6 +84,7 @@ CONNACK_TIMEOUT_S = 30.0
 RECONNECT_MIN_S, RECONNECT_MAX_S = 1, 30
 CLOSE_TIMEOUT_S = 3.0
 READ_BYTES = 256 * 1024
+QUICKACK: int | None = getattr(socket, "TCP_QUICKACK", None)  # Linux
 QOS = 1
 
 
@@ -504,6 +505,11 @@ class _Connection:
                 data = sock.recv(READ_BYTES)
                 if not data:
                     raise ConnectionError("the broker closed the connection")
+                if QUICKACK is not None and self.subscriber:
+                    # Acknowledge at the TCP level now, not after the delayed-ACK timer:
+                    # our PUBACKs wait for the journal, and a broker with Nagle on (Mosquitto's
+                    # default) holds its next small PUBLISH until the last one is acknowledged.
+                    sock.setsockopt(socket.IPPROTO_TCP, QUICKACK, 1)
                 last_heard = now
                 for packet in reader.feed(data):
                     self._dispatch(packet)
