@@ -168,6 +168,13 @@ def main() -> int:
         code = daemon.stop()
         broker.cleanup()
     lost = published - len(counter.keys)
+    expected = {
+        (f"{sites[i % len(sites)]}-gas", start + 60.0 * (i // len(sites))) for i in range(published)
+    }
+    missing = sorted(expected - set(counter.keys))
+    if missing:  # which readings, and when they were published relative to the restarts
+        when = [f"{n} at +{(t - start) / 60.0 * len(sites) / args.rate:.1f} s" for n, t in missing]
+        print(f"readings never corrected: {', '.join(when[:10])}")
     print(
         f"\nsoak: {args.minutes:g} min at {args.rate:.0f} readings/s over {args.channels} "
         f"channels, broker restarted every {args.restart_every:.0f} s; daemon exit {code}"
