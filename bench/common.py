@@ -120,7 +120,7 @@ class Daemon:
         self.process: subprocess.Popen[bytes] | None = None
 
     def start(self, extra_args: Iterable[str] = ()) -> None:
-        env = {**os.environ, "PYTHONPATH": str(ROOT / "daemon") + os.environ.get("ZL_EXTRA_PATH", "")}
+        env = {**os.environ, "PYTHONPATH": str(ROOT / "daemon")}
         with open(self.log, "ab") as log:
             self.process = subprocess.Popen(
                 [*extra_args, sys.executable, "-m", "zeroline.cli", "run", "-c", str(self.config)],
