@@ -24,9 +24,11 @@ for that many seconds, so ``t / 7d`` is time in weeks.
 from __future__ import annotations
 
 import math
+import operator
 import re
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -332,6 +334,16 @@ def evaluate(node: Node, values: Mapping[str, Array], size: int) -> Array:
     return full
 
 
+# The four arithmetic operators, the same for arrays and floats; "^" differs (numpy's power
+# against Python's, which can turn complex) and is handled by each evaluator.
+_ARITHMETIC: dict[str, Callable[[Any, Any], Any]] = {
+    "+": operator.add,
+    "-": operator.sub,
+    "*": operator.mul,
+    "/": operator.truediv,
+}
+
+
 def _evaluate(node: Node, values: Mapping[str, Array]) -> Array:
     if isinstance(node, Number):
         return np.asarray(node.value)
@@ -345,15 +357,8 @@ def _evaluate(node: Node, values: Mapping[str, Array]) -> Array:
     if isinstance(node, Binary):
         left = _evaluate(node.left, values)
         right = _evaluate(node.right, values)
-        if node.op == "+":
-            return left + right
-        if node.op == "-":
-            return left - right
-        if node.op == "*":
-            return left * right
-        if node.op == "/":
-            return left / right
-        return np.power(left, right)
+        arithmetic = _ARITHMETIC.get(node.op)
+        return arithmetic(left, right) if arithmetic else np.power(left, right)
     raise TypeError(f"not an expression node: {node!r}")
 
 
@@ -395,14 +400,9 @@ def _scalar(node: Node, values: Mapping[str, float]) -> float:
         return _SCALAR_FUNCTIONS[node.function](_scalar(node.argument, values))
     if isinstance(node, Binary):
         left, right = _scalar(node.left, values), _scalar(node.right, values)
-        if node.op == "+":
-            return left + right
-        if node.op == "-":
-            return left - right
-        if node.op == "*":
-            return left * right
-        if node.op == "/":
-            return left / right
+        arithmetic = _ARITHMETIC.get(node.op)
+        if arithmetic:
+            return float(arithmetic(left, right))
         result = left**right
         return result if isinstance(result, float) else math.nan  # complex: undefined
     raise TypeError(f"not an expression node: {node!r}")

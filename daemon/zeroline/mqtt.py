@@ -327,9 +327,9 @@ class _Connection:
         )
         self._thread.start()
 
-    def stop(self, final: bytes = wire.DISCONNECT_FRAME) -> None:
-        """Send what is queued plus `final`, close, and end the network thread."""
-        self.send(final)
+    def stop(self) -> None:
+        """Send what is queued plus DISCONNECT, close, and end the network thread."""
+        self.send(wire.DISCONNECT_FRAME)
         self._stopping.set()
         self._wake()  # the network thread, whichever way frames are sent
         if self._thread is not None:

@@ -431,9 +431,7 @@ class Service:
             topic = f"{self.prefix}/{channel.name}/corrected"
             body = corrected_payload(result)
             self._last_output[channel.name] = (result.time, topic, body)
-            self._last_seq = self.broker.publish(topic, body)
-            self.counters.add("published")
-        if self._live:
+            self._send(topic, body)
             for sink in self.sinks:
                 sink.corrected(channel, result)
         self._publish_alerts(channel, events)
@@ -450,8 +448,7 @@ class Service:
         """
         last = self._last_output.get(name)
         if self._live and last is not None and last[0] == time_:
-            self._last_seq = self.broker.publish(last[1], last[2])
-            self.counters.add("republished")
+            self._send(last[1], last[2], counter="republished")
 
     def _apply_control(self, part: ControlPart, message: Message | None) -> dict[str, Any] | None:
         channel = self.table.get(part.channel)
@@ -491,9 +488,14 @@ class Service:
     def _publish(self, topic: str, payload: Any, *, retain: bool = False) -> None:
         if not self._live:
             return
-        data = json.dumps(payload, allow_nan=False).encode()
-        self._last_seq = self.broker.publish(topic, data, retain=retain)
-        self.counters.add("published")
+        self._send(topic, json.dumps(payload, allow_nan=False).encode(), retain=retain)
+
+    def _send(
+        self, topic: str, body: bytes, *, retain: bool = False, counter: str = "published"
+    ) -> None:
+        """Queue one output with the broker link (flushed once per batch, see `_step`)."""
+        self._last_seq = self.broker.publish(topic, body, retain=retain)
+        self.counters.add(counter)
 
     def _publish_alerts(self, channel: Channel, events: Iterable[AlertEvent]) -> None:
         for event in events:
