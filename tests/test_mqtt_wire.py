@@ -59,7 +59,7 @@ def test_connect_variable_header_is_the_specification_example() -> None:
     )
     assert frame[0] == 0x10
     header = frame[2:12]
-    assert header.hex() == "00044d5154540" + "4ce000a"
+    assert header.hex() == "00044d51545404ce000a"
     payload = frame[12:]
     assert payload == b"\x00\x01c" + b"\x00\x01w" + b"\x00\x01x" + b"\x00\x01u" + b"\x00\x01p"
 

@@ -216,19 +216,26 @@ def _legend_outside(axes: Axes) -> None:
     axes.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=8, frameon=False)
 
 
+def _mark_references(
+    axes: Axes, time: FloatArray, values: FloatArray, refs: IntArray, label: str
+) -> None:
+    """Dots on the samples that had a fresh reference value (none: nothing drawn)."""
+    if refs.size:
+        axes.plot(
+            time[refs],
+            values[refs],
+            "o",
+            color=REFERENCE_COLOUR,
+            markersize=_marker_size(refs.size),
+            label=label,
+        )
+
+
 def _draw_raw(axes: Axes, series: Series, refs: IntArray) -> None:
     time, raw = series["time"], series["raw"]
     rows = _line_rows(time.size, refs)
     axes.plot(time[rows], raw[rows], color=RAW_COLOUR, linewidth=0.6, label="raw")
-    if refs.size:
-        axes.plot(
-            time[refs],
-            raw[refs],
-            "o",
-            color=REFERENCE_COLOUR,
-            markersize=_marker_size(refs.size),
-            label="reference sample\n(taught the model)",
-        )
+    _mark_references(axes, time, raw, refs, "reference sample\n(taught the model)")
     axes.set_ylabel("raw")
     _legend_outside(axes)
 
@@ -268,15 +275,7 @@ def _draw_corrected(axes: Axes, series: Series, refs: IntArray) -> None:
         label="± standard uncertainty",
     )
     axes.plot(time[rows], corrected[rows], color=CORRECTED_COLOUR, linewidth=0.8, label="corrected")
-    if refs.size:
-        axes.plot(
-            time[refs],
-            corrected[refs],
-            "o",
-            color=REFERENCE_COLOUR,
-            markersize=_marker_size(refs.size),
-            label="reference sample",
-        )
+    _mark_references(axes, time, corrected, refs, "reference sample")
     axes.set_ylabel("corrected (advisory)")
     _legend_outside(axes)
 

@@ -261,12 +261,9 @@ class ChannelTable:
     ) -> Channel | None:
         """The channel for `template` at `wildcards` (named `name` if the caller has filled
         it in already, as `Routes.match` does), created if new; None at the bound."""
-        if name is not None:
-            channel = self.channels.get(name)
-            if channel is not None:  # the per-reading case: no template filling
-                return channel
         config = self.routes.templates[template]
-        name = fill(config.name, wildcards)
+        if name is None:
+            name = fill(config.name, wildcards)
         channel = self.channels.get(name)
         if channel is not None:
             return channel
