@@ -212,6 +212,34 @@ class Fleet:
             timeout=10,
         ).returncode
 
+    def local_sub_start(self, *topics: str) -> subprocess.Popen[str]:
+        """mosquitto_sub on the gateway's listener as zeroline, QoS 1, waiting (at most 8 s)
+        for one message on any of `topics`; read it with `communicate()`."""
+        filters = [part for topic in topics for part in ("-t", topic)]
+        return subprocess.Popen(
+            [
+                "mosquitto_sub",
+                "-h",
+                "127.0.0.1",
+                "-p",
+                str(self.local_port),
+                "-u",
+                "zeroline",
+                "-P",
+                PASSWORDS["zeroline"],
+                "-q",
+                "1",
+                *filters,
+                "-v",
+                "-C",
+                "1",
+                "-W",
+                "8",
+            ],
+            stdout=subprocess.PIPE,
+            text=True,
+        )
+
     def central_sub(self, topic: str, count: int, client_id: str | None = None) -> str:
         """mosquitto_sub on the central broker (TLS, as the fleet's operations user), QoS 1;
         the lines received. `count` 0: subscribe and leave (registers a persistent session)."""
@@ -312,32 +340,7 @@ def test_gateway_broker_needs_a_password_and_serves_tls(fleet: Fleet) -> None:
     )
     assert anonymous.returncode != 0 and "not authorised" in anonymous.stderr.lower()
 
-    subscriber = subprocess.Popen(
-        [
-            "mosquitto_sub",
-            "-h",
-            "127.0.0.1",
-            "-p",
-            str(fleet.local_port),
-            "-u",
-            "zeroline",
-            "-P",
-            PASSWORDS["zeroline"],
-            "-q",
-            "1",
-            "-t",
-            "site/#",
-            "-t",
-            "zeroline/#",
-            "-v",
-            "-C",
-            "1",
-            "-W",
-            "8",
-        ],
-        stdout=subprocess.PIPE,
-        text=True,
-    )
+    subscriber = fleet.local_sub_start("site/#", "zeroline/#")
     time.sleep(0.3)  # let it subscribe
     logger = [
         "mosquitto_pub",
@@ -397,30 +400,7 @@ def test_control_events_come_in_from_the_central_side(fleet: Fleet) -> None:
     """bridge.conf: gw01/zeroline/<channel>/control published centrally arrives on the
     gateway as zeroline/<channel>/control, where the daemon listens."""
     fleet.wait_bridge_up()
-    subscriber = subprocess.Popen(
-        [
-            "mosquitto_sub",
-            "-h",
-            "127.0.0.1",
-            "-p",
-            str(fleet.local_port),
-            "-u",
-            "zeroline",
-            "-P",
-            PASSWORDS["zeroline"],
-            "-q",
-            "1",
-            "-t",
-            "zeroline/+/control",
-            "-v",
-            "-C",
-            "1",
-            "-W",
-            "8",
-        ],
-        stdout=subprocess.PIPE,
-        text=True,
-    )
+    subscriber = fleet.local_sub_start("zeroline/+/control")
     time.sleep(0.3)
     subprocess.run(
         [
