@@ -44,7 +44,7 @@ class Committer:
         append: Callable[[list[dict[str, Any]]], None],
         ack: Callable[[Any], None],
         count: Callable[[str, int], None],
-        flush: Callable[[], None] = lambda: None,
+        flush: Callable[[], None],
     ) -> None:
         self._append, self._ack, self._count, self._flush = append, ack, count, flush
         self._batches: deque[Batch] = deque()
