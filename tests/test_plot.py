@@ -44,6 +44,7 @@ def _replay_args(out_dir: Path, plot: Path) -> list[str]:
 @pytest.fixture(scope="module")
 def ph_plot(tmp_path_factory: pytest.TempPathFactory) -> Path:
     import matplotlib  # noqa: F401  (in the test extra: a missing one is a failure, not a skip)
+
     out_dir = tmp_path_factory.mktemp("plot")
     plot = out_dir / "ph.png"
     assert cli.main(_replay_args(out_dir, plot)) == 0
@@ -136,6 +137,7 @@ def test_trace_marks_reference_rows_only_in_reference_mode() -> None:
 def test_empty_trace_is_a_user_error(tmp_path: Path) -> None:
     """Nothing processed: a one-line error, no empty picture."""
     import matplotlib  # noqa: F401  (in the test extra: a missing one is a failure, not a skip)
+
     with pytest.raises(InputError, match="nothing to plot"):
         draw_trace(tmp_path / "x.png", "c", Trace())
     assert not (tmp_path / "x.png").exists()
@@ -146,6 +148,7 @@ def test_unwritable_plot_path_is_one_line_exit_2(
 ) -> None:
     """A plot path in a missing directory: exit 2, one line naming the file."""
     import matplotlib  # noqa: F401  (in the test extra: a missing one is a failure, not a skip)
+
     bad = tmp_path / "missing" / "x.png"
     assert cli.main(_replay_args(tmp_path, bad)) == 2
     err = capsys.readouterr().err.strip().splitlines()

@@ -363,6 +363,117 @@ class TestState:
         second.stop()
 
 
+class TestParked:
+    """Restored channels stay packed rows until something asks for them."""
+
+    def two_channels(self, state_dir: Path) -> tuple[Config, list[tuple[float, float, float]]]:
+        config = parse_config(config_text(state_dir))
+        rows = readings(60)
+        broker = FakeBroker()
+        first = start(config, broker, state_dir)
+        for t, v, _ in rows[:30]:
+            broker.deliver("site/a/gas", reading_payload(t, v))
+            broker.deliver("site/b/gas", reading_payload(t, v + 1.0))
+        assert first.wait_idle(5)
+        first.stop()
+        return config, rows
+
+    def test_restore_parks_and_a_reading_unpacks_exactly(self, state_dir: Path) -> None:
+        config, rows = self.two_channels(state_dir)
+        broker = FakeBroker()
+        second = start(config, broker, state_dir)
+        assert second.table.channels == {}
+        assert sorted(second.table.parked) == ["a-gas", "b-gas"]
+        assert len(second.table) == 2
+        for t, v, _ in rows[30:]:
+            broker.deliver("site/a/gas", reading_payload(t, v))
+        assert second.wait_idle(5)
+        assert sorted(second.table.channels) == ["a-gas"]
+        direct = Channel(config.channels[0], "a-gas")
+        for t, v, _ in rows:
+            direct.process(Sample(t, v))
+        got = second.table.channels["a-gas"].estimator.coefficients
+        assert np.array_equal(got, direct.estimator.coefficients)  # bit for bit
+        second.stop()
+
+    def test_a_parked_channel_is_saved_as_it_was_restored(self, state_dir: Path) -> None:
+        """A snapshot written while b is parked holds b's restored row bit for bit, and a
+        third start continues b exactly."""
+        config, rows = self.two_channels(state_dir)
+        saved = StateStore(state_dir).load_snapshot()
+        assert saved is not None
+        [group] = saved.groups
+        b_row = group.packed.rows[group.names.index("b-gas")].copy()
+        broker = FakeBroker()
+        second = start(config, broker, state_dir)
+        broker.deliver("site/a/gas", reading_payload(rows[30][0], rows[30][1]))
+        assert second.wait_idle(5)
+        second.stop()
+        again = StateStore(state_dir).load_snapshot()
+        assert again is not None
+        [group] = again.groups
+        assert sorted(group.names) == ["a-gas", "b-gas"]
+        assert group.packed.rows[group.names.index("b-gas")].tobytes() == b_row.tobytes()
+        broker3 = FakeBroker()
+        third = start(config, broker3, state_dir)
+        for t, v, _ in rows[30:]:
+            broker3.deliver("site/b/gas", reading_payload(t, v + 1.0))
+        assert third.wait_idle(5)
+        direct = Channel(config.channels[0], "b-gas")
+        for t, v, _ in rows:
+            direct.process(Sample(t, v + 1.0))
+        got = third.table.channels["b-gas"].estimator.coefficients
+        assert np.array_equal(got, direct.estimator.coefficients)
+        third.stop()
+
+    def test_an_input_value_unpacks_the_channel_that_reads_it(self, state_dir: Path) -> None:
+        config, _ = self.two_channels(state_dir)
+        broker = FakeBroker()
+        second = start(config, broker, state_dir)
+        broker.deliver("site/b/temp", json.dumps({"time": T0 + 100.0, "value": 21.5}))
+        assert second.wait_idle(5)
+        assert sorted(second.table.channels) == ["b-gas"]
+        assert "a-gas" in second.table.parked
+        second.stop()
+
+    def test_reload_keeps_parked_channels_parked(self, state_dir: Path) -> None:
+        config, rows = self.two_channels(state_dir)
+        second = start(config, FakeBroker(), state_dir)
+        second.request_reload(
+            parse_config(config_text(state_dir, extra="alerts: {drift_limit: 1}"))
+        )
+        assert second.wait_idle(5, lambda: second._reload is None)
+        assert sorted(second.table.parked) == ["a-gas", "b-gas"]
+        assert second.table.get("a-gas").last_time == rows[29][0]  # type: ignore[union-attr]
+        second.request_reload(parse_config(config_text(state_dir, basis="[constant]")))
+        assert second.wait_idle(5, lambda: second._reload is None)
+        assert second.table.parked == {}
+        assert second.table.channels["b-gas"].last_time == -math.inf  # model changed: fresh
+        second.stop()
+
+    def test_an_unreadable_row_starts_fresh_and_is_counted(
+        self, state_dir: Path, monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture
+    ) -> None:
+        from zeroline import router
+        from zeroline.errors import InputError
+
+        config, rows = self.two_channels(state_dir)
+        broker = FakeBroker()
+        second = start(config, broker, state_dir)
+
+        def unreadable(*_: Any) -> Any:
+            raise InputError("a row of NaN")
+
+        monkeypatch.setattr(router, "unpack_channels", unreadable)
+        with caplog.at_level(logging.WARNING):
+            broker.deliver("site/a/gas", reading_payload(rows[40][0], rows[40][1]))
+            assert second.wait_idle(5)
+        assert second.table.unpark_failures == 1
+        assert second.table.channels["a-gas"].last_time == rows[40][0]  # fresh, then fed
+        assert any("cannot be read (a row of NaN)" in r.getMessage() for r in caplog.records)
+        second.stop()
+
+
 class TestReload:
     def test_reload_keeps_unchanged_models_and_resets_changed_ones(self, state_dir: Path) -> None:
         """SIGHUP semantics: same model_key keeps its state, a changed one starts over."""

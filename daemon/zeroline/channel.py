@@ -48,6 +48,7 @@ from zeroline.state_layout import (
     number,
     optional,
     rearranged,
+    upper_triangle,
 )
 
 Array = npt.NDArray[np.float64]
@@ -947,7 +948,7 @@ def _packed(channels: Sequence[Channel]) -> PackedChannels:
     names = parts.input_names
     scalars = np.array([c._pack_scalars(names) for c in channels], dtype=np.float64)
     n = parts.offset_size + parts.gain_size
-    upper = np.triu_indices(n)
+    upper = upper_triangle(n)
     squared = np.stack([c._squared._matrix for c in channels])[:, upper[0], upper[1]]
     squared_time = np.array([number(c._squared._time) for c in channels], dtype=np.float64)
     estimators, estimator_sides = pack_estimators([c._estimator for c in channels])
@@ -975,21 +976,36 @@ def unpack_channels(
         return _unpacked(config, names, packed)
 
 
-def _unpacked(config: ChannelConfig, names: Sequence[str], packed: PackedChannels) -> list[Channel]:
+def conformed(config: ChannelConfig, packed: PackedChannels, count: int) -> PackedChannels:
+    """`packed` (state of `count` channels) in the layout `config` packs today.
+
+    InputError if it was saved for another model or does not hold `count` rows of its
+    layout. Alert rules or inputs added to or removed from the config since are matched by
+    name (`rearranged`): new ones start as a new channel's do. Cheap (whole-array work), so
+    a daemon can check a snapshot block at start and unpack its channels only when asked.
+    """
     if packed.model != config.model_key():
         raise InputError("state was saved for a different model")
     parts = _TemplateParts.of(config)
     rows = np.asarray(packed.rows, dtype=np.float64)
-    if rows.ndim != 2 or rows.shape[0] != len(names) or len(packed.sides) != len(names):
-        raise InputError(f"packed state holds {rows.shape} values for {len(names)} channels")
+    if rows.ndim != 2 or rows.shape[0] != count or len(packed.sides) != count:
+        raise InputError(f"packed state holds {rows.shape} values for {count} channels")
+    if packed.layout is parts.layout:  # conformed before (a parked channel)
+        return packed
     layout = [(str(name), int(size)) for name, size in packed.layout]
     if layout != parts.layout:  # alert rules or inputs changed in the config
         blank_row = pack_channels([parts.blank_channel()]).rows[0]
         rows = rearranged(rows, layout, parts.layout, blank_row)
+    return PackedChannels(packed.model, parts.layout, rows, list(packed.sides))
+
+
+def _unpacked(config: ChannelConfig, names: Sequence[str], packed: PackedChannels) -> list[Channel]:
+    rows = conformed(config, packed, len(names)).rows
+    parts = _TemplateParts.of(config)
     width = parts.scalar_width
     scalars = rows[:, :width].tolist()
     n = parts.offset_size + parts.gain_size
-    upper = np.triu_indices(n)
+    upper = upper_triangle(n)
     squared_time = rows[:, width].tolist()
     squared = np.zeros((len(names), n, n))
     squared[:, upper[0], upper[1]] = rows[:, width + 1 : width + 1 + len(upper[0])]

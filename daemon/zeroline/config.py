@@ -427,8 +427,13 @@ class ChannelConfig:
 
     def model_key(self) -> str:
         """Everything that defines the learned model: channels whose key did not change keep
-        their state on a config reload."""
-        return repr((self.basis_spec, self.gain_spec, self.learn, self.memory, self.epoch))
+        their state on a config reload. Made once per config (the config never changes;
+        a restored channel is checked against it when it is unpacked)."""
+        key: str | None = self.__dict__.get("_model_key")
+        if key is None:
+            key = repr((self.basis_spec, self.gain_spec, self.learn, self.memory, self.epoch))
+            object.__setattr__(self, "_model_key", key)  # a cache, not a field
+        return key
 
 
 @dataclass(frozen=True)

@@ -81,6 +81,8 @@ replay with OPENBLAS_NUM_THREADS=1 (set before numpy is imported).
 
 from __future__ import annotations
 
+import functools
+import itertools
 import math
 from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any, NamedTuple
@@ -91,7 +93,7 @@ from scipy.linalg import lapack
 
 from zeroline.errors import InputError
 from zeroline.objects import shallow_copy
-from zeroline.state_layout import number, optional
+from zeroline.state_layout import number, optional, upper_triangle
 
 if TYPE_CHECKING:  # the replay module imports this one; at run time see __getattr__ below
     from zeroline.estimator_replay import ReplayResult, replay_batch
@@ -875,7 +877,7 @@ def pack_estimators(
     the restored estimator continues bit for bit; so is the cached solution θ.
     """
     p = estimators[0].n_terms
-    upper = np.triu_indices(p + 1)
+    upper = upper_triangle(p + 1)
     factors = np.stack([e._f for e in estimators])[:, upper[0], upper[1]]
     clock = np.array(
         [
@@ -915,6 +917,12 @@ def pack_estimators(
     return block, sides
 
 
+@functools.lru_cache(maxsize=64)
+def _field_bounds(p: int) -> tuple[int, ...]:
+    """Where each field of `packed_layout(p)` starts, and the row's width last."""
+    return tuple(itertools.accumulate((width for _, width in packed_layout(p)), initial=0))
+
+
 def unpack_estimators(
     prototype: RecursiveEstimator,
     block: FloatArray,
@@ -928,14 +936,15 @@ def unpack_estimators(
     """
     p = prototype.n_terms
     n = block.shape[0] if block.ndim == 2 else 0
-    widths = [width for _, width in packed_layout(p)]
-    if block.ndim != 2 or block.shape[1] != sum(widths):
-        raise InputError(f"packed estimator rows need {sum(widths)} values at p = {p}")
-    parts = np.split(np.array(block, dtype=np.float64), np.cumsum(widths)[:-1], axis=1)
+    bounds = _field_bounds(p)
+    if block.ndim != 2 or block.shape[1] != bounds[-1]:
+        raise InputError(f"packed estimator rows need {bounds[-1]} values at p = {p}")
+    block = np.array(block, dtype=np.float64)
+    parts = [block[:, start:stop] for start, stop in itertools.pairwise(bounds)]
     packed_factor, clock, prior_mean, prior_column, prior_center, solution = parts
-    if not np.all(np.isfinite(packed_factor)):
+    if not np.isfinite(packed_factor).all():
         raise InputError("estimator state holds a non-finite factor")
-    upper = np.triu_indices(p + 1)
+    upper = upper_triangle(p + 1)
     factors = np.zeros((n, p + 1, p + 1))  # each [i] is Fᵀ, so [i].T is F in Fortran order
     factors[:, upper[1], upper[0]] = packed_factor
     prior_rows = np.empty((n, p + 1, p))  # likewise transposed

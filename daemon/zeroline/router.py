@@ -41,10 +41,12 @@ from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
-from zeroline.channel import Channel
+from zeroline.channel import Channel, unpack_channels
 from zeroline.codecs import DecodeLimits, Decoder, make_decoder
 from zeroline.config import ChannelConfig, Config, InputConfig
+from zeroline.errors import InputError
 from zeroline.logs import RateLimitedLogger
+from zeroline.state_layout import PackedChannels
 
 _log = logging.getLogger(__name__)
 
@@ -240,21 +242,36 @@ class Routes:
 
 
 class ChannelTable:
-    """The worker's channels, created on first sight within a bound, and their inputs."""
+    """The worker's channels, created on first sight within a bound, and their inputs.
+
+    Channels restored from a snapshot are *parked*: kept as their packed row (checked
+    against the config's model when parked) and unpacked into a `Channel` only when
+    something asks for them (`get`, a reading, an input value). A daemon with 10,000
+    channels is back at work after reading one array instead of building 10,000 channels
+    first (bench/snapshot.py), and a channel that never reports again costs its row only.
+    """
 
     def __init__(self, routes: Routes, max_channels: int) -> None:
         self.routes = routes
         self.max_channels = max_channels
         self.channels: dict[str, Channel] = {}
         self.origin: dict[str, tuple[str, tuple[str, ...]]] = {}  # name → (template, wildcards)
+        self.parked: dict[str, tuple[PackedChannels, int]] = {}  # name → (block, its row)
         self._input_index: dict[str, list[tuple[str, str]]] = {}  # topic → (channel, input)
         self._latest_inputs: OrderedDict[str, tuple[float, float]] = OrderedDict()
         self.max_inputs = INPUTS_PER_CHANNEL_BOUND * max_channels
         self.inputs_forgotten = 0
+        self.unpark_failures = 0
         self._limit_log = RateLimitedLogger(_log)
 
+    def __len__(self) -> int:
+        return len(self.channels) + len(self.parked)
+
     def get(self, name: str) -> Channel | None:
-        return self.channels.get(name)
+        channel = self.channels.get(name)
+        if channel is None and name in self.parked:
+            channel = self._unpark(name)
+        return channel
 
     def create(
         self, template: str, wildcards: tuple[str, ...], name: str | None = None
@@ -264,10 +281,10 @@ class ChannelTable:
         config = self.routes.templates[template]
         if name is None:
             name = fill(config.name, wildcards)
-        channel = self.channels.get(name)
+        channel = self.get(name)
         if channel is not None:
             return channel
-        if len(self.channels) >= self.max_channels:
+        if len(self) >= self.max_channels:
             self._limit_log.warning(
                 "channel_limit",
                 f"channel limit reached: {self.max_channels} channels exist, so {name!r} "
@@ -280,27 +297,78 @@ class ChannelTable:
         return channel
 
     def adopt(self, channel: Channel, template: str, wildcards: tuple[str, ...]) -> None:
-        """Add an existing channel (restored from a snapshot, or kept over a reload)."""
+        """Add an existing channel (kept over a reload, or restored the long way)."""
         self._adopt(channel, template, wildcards)
+
+    def park(
+        self,
+        template: str,
+        names: list[str],
+        wildcards: list[tuple[str, ...]],
+        packed: PackedChannels,
+    ) -> None:
+        """Add restored channels as `packed` rows (in the layout of `template`'s config)."""
+        config = self.routes.templates[template]
+        for row, (name, levels) in enumerate(zip(names, wildcards, strict=True)):
+            self.parked[name] = (packed, row)
+            self.origin[name] = (template, levels)
+            self._index_inputs(name, config, levels)
+
+    def parked_blocks(self) -> list[tuple[str, list[str], PackedChannels]]:
+        """Parked channels by block: (template, names, their packed rows)."""
+        blocks: dict[int, tuple[PackedChannels, list[str], list[int]]] = {}
+        for name, (packed, row) in self.parked.items():
+            entry = blocks.setdefault(id(packed), (packed, [], []))
+            entry[1].append(name)
+            entry[2].append(row)
+        return [
+            (self.origin[names[0]][0], names, packed.take(rows))
+            for packed, names, rows in blocks.values()
+        ]
+
+    def _unpark(self, name: str) -> Channel:
+        packed, row = self.parked.pop(name)
+        template, wildcards = self.origin[name]
+        config = self.routes.templates[template]
+        try:
+            [channel] = unpack_channels(config, [name], packed.take([row]))
+        except (KeyError, TypeError, ValueError, IndexError, InputError) as error:
+            self.unpark_failures += 1
+            _log.warning(
+                "channel %r: its saved state cannot be read (%s); it starts fresh", name, error
+            )
+            channel = Channel(config, name)
+        self.channels[name] = channel
+        self._apply_latest_inputs(channel, wildcards)
+        return channel
 
     def _adopt(self, channel: Channel, template: str, wildcards: tuple[str, ...]) -> None:
         self.channels[channel.name] = channel
         self.origin[channel.name] = (template, wildcards)
+        self._index_inputs(channel.name, channel.config, wildcards)
+        self._apply_latest_inputs(channel, wildcards)
+
+    def _index_inputs(self, name: str, config: ChannelConfig, wildcards: tuple[str, ...]) -> None:
+        for spec in config.inputs.values():
+            if spec.topic is not None:
+                topic = fill(spec.topic, wildcards)
+                self._input_index.setdefault(topic, []).append((name, spec.name))
+
+    def _apply_latest_inputs(self, channel: Channel, wildcards: tuple[str, ...]) -> None:
         for spec in channel.config.inputs.values():
-            if spec.topic is None:
-                continue
-            topic = fill(spec.topic, wildcards)
-            self._input_index.setdefault(topic, []).append((channel.name, spec.name))
-            latest = self._latest_inputs.get(topic)
-            if latest is not None:
-                channel.set_input(spec.name, *latest)
+            if spec.topic is not None:
+                latest = self._latest_inputs.get(fill(spec.topic, wildcards))
+                if latest is not None:
+                    channel.set_input(spec.name, *latest)
 
     def deliver_input(self, topic: str, time: float, value: float) -> list[str]:
         """Give an input value to every channel that reads `topic`; returns their names."""
         self._remember(topic, time, value)
         targets = self._input_index.get(topic, [])
         for channel_name, input_name in targets:
-            self.channels[channel_name].set_input(input_name, time, value)
+            channel = self.get(channel_name)
+            assert channel is not None  # every indexed name is a channel or parked
+            channel.set_input(input_name, time, value)
         return [channel_name for channel_name, _ in targets]
 
     def _remember(self, topic: str, time: float, value: float) -> None:
@@ -328,4 +396,5 @@ class ChannelTable:
                     self._remember(str(topic), float(pair[0]), float(pair[1]))
 
     def names(self) -> Iterable[str]:
-        return self.channels.keys()
+        """Every channel's name, parked ones included."""
+        return [*self.channels, *self.parked]

@@ -84,6 +84,7 @@ from zeroline.channel import (
     ControlEvent,
     Corrected,
     Sample,
+    conformed,
     pack_channels,
     unpack_channels,
 )
@@ -97,6 +98,7 @@ from zeroline.mqtt import BrokerLink, Message
 from zeroline.output_json import corrected_payload
 from zeroline.router import ChannelTable, Routes, fill
 from zeroline.state import Snapshot, SnapshotGroup, StateStore
+from zeroline.state_layout import PackedChannels, concatenated
 
 _log = logging.getLogger(__name__)
 
@@ -529,7 +531,9 @@ class Service:
         if now - self._last_stats < STATS_EVERY_S:
             return False
         self._last_stats = now
-        stats = {**self.counters.as_dict(), "channels": len(self.table.channels)}
+        stats = {**self.counters.as_dict(), "channels": len(self.table)}
+        stats["channels_parked"] = len(self.table.parked)  # restored, not asked for since
+        stats["states_unreadable"] = self.table.unpark_failures
         stats["queue"] = self._queue.qsize()
         stats["awaiting_commit"] = len(self._awaiting) + self._committer.pending()
         self._publish(f"{self.prefix}/stats", stats, retain=True)
@@ -600,21 +604,7 @@ class Service:
         Every channel is packed each time (10,000 in about 0.1 s, see bench/RESULTS.md),
         so no per-channel copy of the state is kept in memory.
         """
-        members: dict[tuple[str, int], list[tuple[str, tuple[str, ...], Channel]]] = {}
-        for name, channel in self.table.channels.items():
-            template, wildcards = self.table.origin[name]
-            members.setdefault((template, id(channel.config)), []).append(
-                (name, wildcards, channel)
-            )
-        groups = [
-            SnapshotGroup(
-                template,
-                [name for name, _, _ in group],
-                [wildcards for _, wildcards, _ in group],
-                pack_channels([channel for _, _, channel in group]),
-            )
-            for (template, _), group in members.items()
-        ]
+        groups = self._snapshot_groups()
         meta = {
             "journal_seq": self._journal_seq,
             "saved_at": time.time(),
@@ -633,10 +623,30 @@ class Service:
         self.counters.add("snapshots")
         _log.debug(
             "snapshot of %d channels, %d bytes in %.1f ms",
-            len(self.table.channels),
+            len(self.table),
             size,
             1000 * (self.store.last_snapshot_s or 0.0),
         )
+
+    def _snapshot_groups(self) -> list[SnapshotGroup]:
+        """Every channel's state, one group per template: channels in use packed now,
+        parked ones (restored, not asked for since) as the rows they were restored from."""
+        members: dict[str, list[tuple[str, Channel]]] = {}
+        for name, channel in self.table.channels.items():
+            members.setdefault(self.table.origin[name][0], []).append((name, channel))
+        blocks: dict[str, tuple[list[str], list[PackedChannels]]] = {}
+        for template, group in members.items():
+            packed = pack_channels([channel for _, channel in group])
+            blocks[template] = ([name for name, _ in group], [packed])
+        for template, names, packed in self.table.parked_blocks():
+            entry = blocks.setdefault(template, ([], []))
+            entry[0].extend(names)
+            entry[1].append(packed)
+        origin = self.table.origin
+        return [
+            SnapshotGroup(template, names, [origin[n][1] for n in names], concatenated(parts))
+            for template, (names, parts) in blocks.items()
+        ]
 
     def restore(self) -> None:
         """Load the snapshot and replay the journal after it (no outputs)."""
@@ -675,7 +685,7 @@ class Service:
             )
             return 0
         try:
-            channels = unpack_channels(config, group.names, group.packed)
+            packed = conformed(config, group.packed, len(group.names))
         except (KeyError, TypeError, ValueError, IndexError, InputError) as error:
             _log.warning(
                 "%d channel(s) of template %r: saved state does not fit the configured model "
@@ -685,10 +695,9 @@ class Service:
                 error,
             )
             return 0
-        for channel, wildcards in zip(channels, group.wildcards, strict=True):
-            self.table.adopt(channel, group.template, wildcards)
-            self._dirty.add(channel.name)
-        return len(channels)
+        self.table.park(group.template, group.names, group.wildcards, packed)
+        self._dirty.update(group.names)
+        return len(group.names)
 
     def _restore_channel(self, name: str, entry: Any) -> int:
         try:
@@ -726,6 +735,20 @@ class Service:
         table = ChannelTable(routes, int(config.limits["max_channels"]))
         table.load_latest_inputs(self.table.latest_inputs())
         kept = fresh = dropped = 0
+        for template, names, packed in self.table.parked_blocks():
+            new_config = routes.templates.get(template)
+            origin = self.table.origin
+            if new_config is not None and packed.model == new_config.model_key():
+                conformed_rows = conformed(new_config, packed, len(names))
+                table.park(template, names, [origin[n][1] for n in names], conformed_rows)
+                kept += len(names)
+            elif new_config is None:
+                dropped += len(names)
+            else:
+                for name in names:
+                    table.adopt(Channel(new_config, name), template, origin[name][1])
+                    _log.info("channel %r: its model changed; it starts fresh", name)
+                fresh += len(names)
         for name, channel in self.table.channels.items():
             template, wildcards = self.table.origin[name]
             new_config = routes.templates.get(template)
@@ -743,7 +766,7 @@ class Service:
         old_topics = self._subscribed
         self.config, self.routes, self.table = config, routes, table
         self.prefix = config.output_prefix
-        self._dirty = set(table.channels)
+        self._dirty = set(table.names())
         new_topics = routes.subscriptions()
         self.broker.unsubscribe(sorted(old_topics - new_topics))
         self.broker.subscribe(sorted(new_topics - old_topics))

@@ -21,6 +21,7 @@ The fields themselves are defined next to the state they hold: `Channel._pack_sc
 from __future__ import annotations
 
 import contextlib
+import functools
 import gc
 import math
 from collections.abc import Iterator, Sequence
@@ -52,6 +53,37 @@ class PackedChannels:
     layout: Layout
     rows: Array
     sides: list[dict[str, Any] | None]
+
+    def take(self, indices: Sequence[int]) -> PackedChannels:
+        """The channels at `indices`, in that order (their rows copied)."""
+        return PackedChannels(
+            self.model,
+            self.layout,
+            self.rows[np.asarray(indices, dtype=np.intp)],
+            [self.sides[i] for i in indices],
+        )
+
+
+def concatenated(parts: Sequence[PackedChannels]) -> PackedChannels:
+    """One block of the channels of `parts`, which share a model and a layout."""
+    first = parts[0]
+    if any(part.model != first.model or part.layout != first.layout for part in parts):
+        raise ValueError("concatenated takes packed channels of one model and layout")
+    if len(parts) == 1:
+        return first
+    sides = [side for part in parts for side in part.sides]
+    return PackedChannels(first.model, first.layout, np.vstack([p.rows for p in parts]), sides)
+
+
+@functools.lru_cache(maxsize=64)
+def upper_triangle(size: int) -> tuple[npt.NDArray[np.intp], npt.NDArray[np.intp]]:
+    """`np.triu_indices(size)`, made once per size: a channel unpacked on its own (the
+    daemon unpacks a restored channel at its first reading) would otherwise spend a
+    third of its time rebuilding them. Read-only: the same arrays serve every caller."""
+    rows, columns = np.triu_indices(size)
+    rows.setflags(write=False)
+    columns.setflags(write=False)
+    return rows, columns
 
 
 def number(value: float | None) -> float:
