@@ -199,8 +199,10 @@ class AlertBook:
 
     def active_json(self) -> dict[str, Any] | None:
         """The active events as JSON (they hold free text), or None when all are clear."""
-        active = {name: r.active.to_json() for name, r in self.rules.items() if r.active}
-        return active or None
+        rules = self.rules
+        if not any(rule.active for rule in rules.values()):  # most channels, most of the time
+            return None
+        return {name: r.active.to_json() for name, r in rules.items() if r.active}
 
     def unpack(self, values: Sequence[float], active: dict[str, Any] | None) -> None:
         """Restore `pack`'s values and `active_json`'s events."""

@@ -949,7 +949,8 @@ def _packed(channels: Sequence[Channel]) -> PackedChannels:
     scalars = np.array([c._pack_scalars(names) for c in channels], dtype=np.float64)
     n = parts.offset_size + parts.gain_size
     upper = upper_triangle(n)
-    squared = np.stack([c._squared._matrix for c in channels])[:, upper[0], upper[1]]
+    squared = np.concatenate([c._squared._matrix.ravel() for c in channels])
+    squared = squared.reshape(len(channels), n, n)[:, upper[0], upper[1]]
     squared_time = np.array([number(c._squared._time) for c in channels], dtype=np.float64)
     estimators, estimator_sides = pack_estimators([c._estimator for c in channels])
     rows = np.hstack(
