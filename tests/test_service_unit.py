@@ -436,6 +436,16 @@ class TestParked:
         assert "a-gas" in second.table.parked
         second.stop()
 
+    def test_the_status_view_of_a_parked_channel_leaves_it_parked(self, state_dir: Path) -> None:
+        config, rows = self.two_channels(state_dir)
+        second = start(config, FakeBroker(), state_dir)
+        seen = second.table.view("b-gas")
+        assert seen is not None and seen.last_time == rows[29][0]
+        assert second.table.view("c-gas") is None
+        assert sorted(second.table.parked) == ["a-gas", "b-gas"]
+        assert sorted(second.table.names()) == ["a-gas", "b-gas"]
+        second.stop()
+
     def test_reload_keeps_parked_channels_parked(self, state_dir: Path) -> None:
         config, rows = self.two_channels(state_dir)
         second = start(config, FakeBroker(), state_dir)

@@ -18,7 +18,7 @@ from __future__ import annotations
 import math
 import threading
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -125,12 +125,14 @@ class StatusBoard:
 
     def __init__(
         self,
-        channels: Callable[[], Mapping[str, Channel]],
+        names: Callable[[], Iterable[str]],
+        lookup: Callable[[str], Channel | None],
         counters: Callable[[], Mapping[str, int]],
         ready: Callable[[], bool],
         extra: Callable[[], Mapping[str, float]] = dict,
     ) -> None:
-        self._channels = channels
+        self._names = names
+        self._lookup = lookup
         self._counters = counters
         self._ready = ready
         self._extra = extra
@@ -169,10 +171,10 @@ class StatusBoard:
         return ready, {"broker_connected": ready, "state_loaded": True}
 
     def channel_names(self) -> Sequence[str]:
-        return sorted(self._channels())
+        return sorted(set(self._names()))  # a channel being unparked may show up twice
 
     def channel_status(self, name: str) -> ChannelStatus | None:
-        channel = self._channels().get(name)
+        channel = self._lookup(name)
         if channel is None:
             return None
         with self._lock:

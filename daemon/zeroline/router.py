@@ -273,6 +273,24 @@ class ChannelTable:
             channel = self._unpark(name)
         return channel
 
+    def view(self, name: str) -> Channel | None:
+        """The channel to look at from another thread (the status page): a channel in use,
+        or for a parked one a copy unpacked from its row, which is not kept (the worker
+        alone unparks channels)."""
+        channel = self.channels.get(name)
+        if channel is not None:
+            return channel
+        parked = self.parked.get(name)
+        origin = self.origin.get(name)
+        if parked is None or origin is None:
+            return None
+        packed, row = parked
+        try:
+            [copy] = unpack_channels(self.routes.templates[origin[0]], [name], packed.take([row]))
+        except (KeyError, TypeError, ValueError, IndexError, InputError):
+            return None  # the worker logs it and counts it when the channel is used
+        return copy
+
     def create(
         self, template: str, wildcards: tuple[str, ...], name: str | None = None
     ) -> Channel | None:
@@ -327,7 +345,7 @@ class ChannelTable:
         ]
 
     def _unpark(self, name: str) -> Channel:
-        packed, row = self.parked.pop(name)
+        packed, row = self.parked[name]
         template, wildcards = self.origin[name]
         config = self.routes.templates[template]
         try:
@@ -338,7 +356,10 @@ class ChannelTable:
                 "channel %r: its saved state cannot be read (%s); it starts fresh", name, error
             )
             channel = Channel(config, name)
+        # In use first, then no longer parked: `names` (read from the status page's thread,
+        # parked first) then never misses the channel.
         self.channels[name] = channel
+        del self.parked[name]
         self._apply_latest_inputs(channel, wildcards)
         return channel
 
@@ -396,5 +417,6 @@ class ChannelTable:
                     self._remember(str(topic), float(pair[0]), float(pair[1]))
 
     def names(self) -> Iterable[str]:
-        """Every channel's name, parked ones included."""
-        return [*self.channels, *self.parked]
+        """Every channel's name, parked ones included (a name may appear twice while it
+        is being unparked: parked is read first so that none is ever missing)."""
+        return [*self.parked, *self.channels]

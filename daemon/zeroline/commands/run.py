@@ -48,7 +48,8 @@ def run(args: argparse.Namespace) -> int:
     service = Service(config, broker, store)
     timeseries = _timeseries(config, service)
     board = StatusBoard(
-        channels=lambda: dict(service.table.channels),
+        names=lambda: list(service.table.names()),
+        lookup=service.table.view,
         counters=service.counters.as_dict,
         ready=broker.connected.is_set,
         extra=_sink_gauges(timeseries),
