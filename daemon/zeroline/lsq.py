@@ -128,7 +128,7 @@ def fit_least_squares(
     >>> import numpy as np
     >>> x = np.arange(5.0)
     >>> fit = fit_least_squares(np.c_[np.ones(5), x], 2 + 3 * x, names=["constant", "x"])
-    >>> [round(c, 12) for c in fit.coefficients]
+    >>> [round(float(c), 12) for c in fit.coefficients]
     [2.0, 3.0]
     """
     f_all, y_all, w_all, names = _validated(design, y, weights, names)
