@@ -92,6 +92,7 @@ from zeroline.codecs import Reading
 from zeroline.committer import Batch, Committer
 from zeroline.config import Config
 from zeroline.errors import InputError
+from zeroline.handoff import Handoff
 from zeroline.intake import ControlPart, ErrorPart, InputPart, Part, ReadingPart, Work, decode
 from zeroline.logs import RateLimitedLogger
 from zeroline.mqtt import BrokerLink, Message
@@ -198,7 +199,7 @@ class Service:
         self.routes = Routes(config)
         self.table = ChannelTable(self.routes, int(config.limits["max_channels"]))
         self.snapshot_every = float(config.state["snapshot_every"])
-        self._queue: queue.Queue[Work] = queue.Queue(maxsize=int(config.limits["queue"]))
+        self._queue: Handoff[Work] = Handoff(maxsize=int(config.limits["queue"]))
         self._awaiting: deque[_Pending] = deque()
         self._committer = Committer(
             lambda records: self.store.append_journal(records),
