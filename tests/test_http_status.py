@@ -532,3 +532,39 @@ class TestBadRequests:
         found = families(request(server, "/metrics").body.decode())
         assert sample_value(found["zeroline_http_responses"], code="431") == 5
         assert sample_value(found["zeroline_http_responses"], code="400") == 5
+
+
+def test_history_keeps_the_last_readings_oldest_first_with_nan_for_none() -> None:
+    from zeroline.channel import Corrected
+    from zeroline.status import History
+
+    history = History(length=3)
+    assert history.rows().shape == (0, 5)
+    for i in range(5):
+        known = i != 3  # reading 3 could not be corrected
+        history.add(
+            Corrected(
+                time=100.0 + i,
+                raw=float(i),
+                corrected=i - 0.5 if known else None,
+                baseline=0.5 if known else None,
+                uncertainty=0.1 if known else None,
+                quality="ok",
+                quality_code=1,
+                flags=(),
+                gain=None,
+                drift_rate=None,
+                learned=known,
+            )
+        )
+    rows = history.rows()
+    assert rows[:, 0].tolist() == [102.0, 103.0, 104.0]  # wrapped round, oldest first
+    assert rows[0].tolist() == [102.0, 2.0, 1.5, 0.5, 0.1]
+    assert math.isnan(rows[1, 2]) and math.isnan(rows[1, 3]) and math.isnan(rows[1, 4])
+    assert history.as_dicts()[1] == {
+        "time": 103.0,
+        "raw": 3.0,
+        "corrected": None,
+        "baseline": None,
+        "uncertainty": None,
+    }

@@ -10,6 +10,7 @@ gateway with thousands of channels pays a fixed, small amount of memory for the 
 
 from __future__ import annotations
 
+import array
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
@@ -23,29 +24,42 @@ from zeroline.channel import Channel, Corrected
 Array = npt.NDArray[np.float64]
 HISTORY_LENGTH = 120
 HISTORY_FIELDS = ("time", "raw", "corrected", "baseline", "uncertainty")
+_WIDTH = len(HISTORY_FIELDS)
 
 
 class History:
-    """The last `length` corrected readings of a channel, as numbers (NaN for missing)."""
+    """The last `length` corrected readings of a channel, as numbers (NaN for missing).
+
+    An `array.array` of float64 rather than a numpy array: `add` runs for every reading on
+    the worker, and five item stores into an array are a third of the cost of one numpy
+    row assignment (~0.6 against ~1.5 µs on a slow machine); the HTTP thread, which reads
+    it rarely, makes the numpy view.
+    """
 
     def __init__(self, length: int = HISTORY_LENGTH) -> None:
         self.length = length
-        self._rows = np.full((length, len(HISTORY_FIELDS)), math.nan)
+        self._values = array.array("d", [math.nan]) * (length * _WIDTH)
         self._next = 0
         self._count = 0
 
     def add(self, result: Corrected) -> None:
-        values = (result.time, result.raw, result.corrected, result.baseline, result.uncertainty)
-        self._rows[self._next] = [math.nan if v is None else v for v in values]
+        values, at = self._values, self._next * _WIDTH
+        corrected, baseline, uncertainty = result.corrected, result.baseline, result.uncertainty
+        values[at] = result.time
+        values[at + 1] = result.raw
+        values[at + 2] = math.nan if corrected is None else corrected
+        values[at + 3] = math.nan if baseline is None else baseline
+        values[at + 4] = math.nan if uncertainty is None else uncertainty
         self._next = (self._next + 1) % self.length
         self._count = min(self._count + 1, self.length)
 
     def rows(self) -> Array:
         """Oldest first, shape (n, 5): time, raw, corrected, baseline, uncertainty."""
+        table = np.frombuffer(self._values, dtype=np.float64).reshape(self.length, _WIDTH)
         ordered: Array = (
-            self._rows[: self._count].copy()
+            table[: self._count].copy()
             if self._count < self.length
-            else np.concatenate([self._rows[self._next :], self._rows[: self._next]])
+            else np.concatenate([table[self._next :], table[: self._next]])
         )
         return ordered
 
