@@ -17,13 +17,20 @@ import re
 from zeroline.channel import Corrected
 
 _IDENTIFIER = re.compile(r"[a-z_]+")
+_TEMPLATE = (
+    '{"time": %s, "raw": %s, "corrected": %s, "baseline": %s, "uncertainty": %s, '
+    '"quality": %s, "quality_code": %d, "flags": [%s], "gain": %s, "drift_rate": %s}'
+)
+#: JSON text of the quality words and flag lists seen so far: a few dozen combinations
+#: of a fixed vocabulary (bounded all the same, should a caller invent words).
+_TEXTS: dict[object, str] = {}
+_TEXTS_MAX = 1024
 
 
 def _number(value: float | None) -> str:
-    if value is None:
-        return "null"
-    number = float(value)  # numpy scalars too: their repr is not JSON
-    return float.__repr__(number) if math.isfinite(number) else "null"
+    # float() because a numpy scalar's repr is not JSON; math.isfinite, not `v - v`, which
+    # warns for a numpy infinity.
+    return "null" if value is None or not math.isfinite(value) else repr(float(value))
 
 
 def _word(text: str) -> str:
@@ -31,17 +38,33 @@ def _word(text: str) -> str:
     return f'"{text}"' if _IDENTIFIER.fullmatch(text) else json.dumps(text)
 
 
+def _text(key: str | tuple[str, ...]) -> str:
+    """The JSON of a quality word (a str) or the inside of a flag list (a tuple), cached."""
+    text = _TEXTS.get(key)
+    if text is None:
+        text = _word(key) if isinstance(key, str) else ", ".join(_word(flag) for flag in key)
+        if len(_TEXTS) < _TEXTS_MAX:
+            _TEXTS[key] = text
+    return text
+
+
 def corrected_payload(result: Corrected) -> bytes:
-    """`json.dumps(result.to_json(), allow_nan=False).encode()`, fast."""
-    time = result.time
-    time_text = float.__repr__(float(time)) if type(time) is not int else str(time)
-    raw = result.raw
-    raw_text = float.__repr__(float(raw)) if type(raw) is not int else str(raw)
-    flags = ", ".join(_word(flag) for flag in result.flags)
+    """`json.dumps(result.to_json(), allow_nan=False).encode()`, fast (one %-format: about
+    half the time of building the text piece by piece; the six float reprs are most of
+    what is left)."""
+    time, raw = result.time, result.raw
     return (
-        f'{{"time": {time_text}, "raw": {raw_text}, '
-        f'"corrected": {_number(result.corrected)}, "baseline": {_number(result.baseline)}, '
-        f'"uncertainty": {_number(result.uncertainty)}, "quality": {_word(result.quality)}, '
-        f'"quality_code": {int(result.quality_code)}, "flags": [{flags}], '
-        f'"gain": {_number(result.gain)}, "drift_rate": {_number(result.drift_rate)}}}'
+        _TEMPLATE
+        % (
+            repr(float(time)) if type(time) is not int else str(time),
+            repr(float(raw)) if type(raw) is not int else str(raw),
+            _number(result.corrected),
+            _number(result.baseline),
+            _number(result.uncertainty),
+            _text(result.quality),
+            result.quality_code,
+            _text(result.flags),
+            _number(result.gain),
+            _number(result.drift_rate),
+        )
     ).encode()
