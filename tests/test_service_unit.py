@@ -124,6 +124,17 @@ def reading_payload(t: float, v: float) -> str:
     return json.dumps({"time": t, "value": v})
 
 
+def assert_same_as_never_stopped(
+    service: Service, config: Config, name: str, rows: list[tuple[float, float, float]]
+) -> None:
+    """The service's channel `name` equals, bit for bit, a channel fed every row directly."""
+    direct = Channel(config.channels[0], name)
+    for t, v, _ in rows:
+        direct.process(Sample(t, v))
+    got = service.table.channels[name].estimator.coefficients
+    assert np.array_equal(got, direct.estimator.coefficients)
+
+
 @pytest.fixture()
 def state_dir(tmp_path: Path) -> Path:
     return tmp_path / "state"
@@ -274,11 +285,7 @@ class TestState:
         second = start(config, broker2, state_dir)
         self.feed(broker2, rows[40:])
         assert second.wait_idle(5)
-        direct = Channel(config.channels[0], "a-gas")
-        for t, v, _ in rows:
-            direct.process(Sample(t, v))
-        got = second.table.channels["a-gas"].estimator.coefficients
-        assert np.array_equal(got, direct.estimator.coefficients)  # bit for bit
+        assert_same_as_never_stopped(second, config, "a-gas", rows)
         second.stop()
 
     def test_crash_restores_from_snapshot_plus_journal(self, state_dir: Path) -> None:
@@ -389,11 +396,7 @@ class TestParked:
             broker.deliver("site/a/gas", reading_payload(t, v))
         assert second.wait_idle(5)
         assert sorted(second.table.channels) == ["a-gas"]
-        direct = Channel(config.channels[0], "a-gas")
-        for t, v, _ in rows:
-            direct.process(Sample(t, v))
-        got = second.table.channels["a-gas"].estimator.coefficients
-        assert np.array_equal(got, direct.estimator.coefficients)  # bit for bit
+        assert_same_as_never_stopped(second, config, "a-gas", rows)
         second.stop()
 
     def test_a_parked_channel_is_saved_as_it_was_restored(self, state_dir: Path) -> None:
@@ -419,11 +422,8 @@ class TestParked:
         for t, v, _ in rows[30:]:
             broker3.deliver("site/b/gas", reading_payload(t, v + 1.0))
         assert third.wait_idle(5)
-        direct = Channel(config.channels[0], "b-gas")
-        for t, v, _ in rows:
-            direct.process(Sample(t, v + 1.0))
-        got = third.table.channels["b-gas"].estimator.coefficients
-        assert np.array_equal(got, direct.estimator.coefficients)
+        b_rows = [(t, v + 1.0, temp) for t, v, temp in rows]
+        assert_same_as_never_stopped(third, config, "b-gas", b_rows)
         third.stop()
 
     def test_an_input_value_unpacks_the_channel_that_reads_it(self, state_dir: Path) -> None:
