@@ -16,6 +16,7 @@ at most 4e-13 elsewhere. All data are invented here from seeded generators.
 from __future__ import annotations
 
 import logging
+import math
 import subprocess
 import sys
 from dataclasses import dataclass
@@ -239,6 +240,50 @@ class TestContinuing:
         assert np.max(np.abs(out.coefficients[-1] - last)) / np.max(np.abs(last)) < TOLERANCE
         assert fast.residual_sd == pytest.approx(slow.residual_sd, rel=1e-9)
         assert fast.effective_n == pytest.approx(slow.effective_n, rel=1e-12)
+
+
+@pytest.mark.usefixtures("replay_path")
+class TestRefusals:
+    """Bad rows anywhere are refused with one clear error before anything is learnt (the
+    kernel checks them as it goes, on copies of the state)."""
+
+    @pytest.mark.parametrize(
+        ("array", "row", "value", "message"),
+        [
+            ("phi", 700, math.nan, "phi must be finite"),
+            ("phi", 1, math.inf, "phi must be finite"),
+            ("y", 2_999, -math.inf, "y must be finite"),
+            ("weights", 1_500, -0.5, "weights must be >= 0"),
+            ("weights", 10, math.nan, "weights must be finite"),
+            ("times", 2_000, 0.0, "times must not decrease"),
+            ("times", 0, 0.0, "nor start before the last update"),
+        ],
+    )
+    def test_bad_row_changes_nothing(
+        self, array: str, row: int, value: float, message: str
+    ) -> None:
+        rows = random_rows(4_000, MINUTE, seed=19)
+        est = RecursiveEstimator(6, half_life=DAY)
+        for i in range(1_000):
+            est.update(rows.phi[i], rows.y[i], rows.weights[i], rows.times[i])
+        before = pack_estimators([est])[0]
+        bad = Rows(
+            *(getattr(rows, name)[1_000:].copy() for name in ("phi", "y", "weights", "times"))
+        )
+        target = getattr(bad, array)
+        if array == "phi":
+            target[row, 3] = value
+        else:
+            target[row] = value
+        with pytest.raises(InputError, match=message):
+            replay_batch(est, bad.phi, bad.y, bad.weights, bad.times)
+        assert np.array_equal(pack_estimators([est])[0], before, equal_nan=True)
+
+    def test_fresh_estimator_with_a_bad_first_time_learns_nothing(self) -> None:
+        est = RecursiveEstimator(2, half_life=DAY)
+        with pytest.raises(InputError, match="times must be finite"):
+            replay_batch(est, np.ones((3, 2)), np.ones(3), None, [math.nan, 1.0, 2.0])
+        assert est.time is None and est.effective_n == 0.0
 
 
 class TestKernelFallback:

@@ -198,14 +198,19 @@ def replay_rows(
     prediction: FloatArray,
     residual: FloatArray,
     start: int,
-) -> None:
+) -> int:
     """Learn rows `start` to the end as `update` would, writing each row's results.
 
     `terms` is any tuple of p entries (its length is what the compiler specialises on);
     `factor` is G, set to the end state (rows of positive diagonal); `clock` the scalars
     (positions above; HALF_LIFE 0 means no forgetting), `theta` the cached θ, valid if
     clock[SOLVED] is 1, both updated; `phi` in the user's units (divided by `scale` here
-    when `scaled`, as `update` does). Times must not decrease nor precede clock[TIME].
+    when `scaled`, as `update` does).
+
+    Returns −1, or the index of the first row with a non-finite number, a negative weight
+    or a time before the one before it (or before clock[TIME]): the kernel stops there,
+    leaving `factor`, `clock` and `theta` part-way (the caller passes copies), so checking
+    the rows costs no pass of its own.
     """
     p = len(terms)
     n = phi.shape[0]
@@ -229,7 +234,13 @@ def replay_rows(
         penalty = _solve(unit, theta, center, root, p)
     step, decay = -1.0, 1.0  # the last Δt and its 2^(−Δt/h): regular samples reuse it
     for i in range(start, n):
-        now = times[i]
+        now, target, weight = times[i], y[i], weights[i]
+        probe = 0.0  # stays 0 if φ is finite: x − x is NaN for NaN and ±inf
+        for j in range(p):
+            probe += phi[i, j] - phi[i, j]
+        finite = math.isfinite(target) and math.isfinite(weight) and probe == 0.0
+        if not (finite and weight >= 0.0 and now >= time and now < math.inf):
+            return i
         # ---- _advance: forgetting, then the prior's top-up when due
         if forgetting and now > time:
             if now - time != step:
@@ -269,11 +280,9 @@ def replay_rows(
             value = phi[i, j] / scale[j] if scaled else phi[i, j]
             x[j] = value
             guess += value * theta[j]
-        target = y[i]
         prediction[i] = guess
         residual[i] = target - guess
         # ---- learning the row
-        weight = weights[i]
         if weight > 0.0:
             if (i & 1023) == 0:  # bound the drift of 1/D without forgetting (no top-ups)
                 _reciprocals(d, rd, p)
@@ -305,3 +314,4 @@ def replay_rows(
     clock[REF_WEIGHT], clock[REF_TIME] = ref_weight, ref_time
     clock[COUNT], clock[INFORMATION] = count, information
     clock[SOLVED], clock[PENALTY] = 1.0, penalty
+    return -1

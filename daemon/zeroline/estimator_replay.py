@@ -118,24 +118,19 @@ def replay_batch(
     [2.0, 0.5]
     """
     p = estimator.n_terms
-    phi_array, y_array, weight_array, time_array = _validated_rows(
-        estimator, phi, y, weights, times
-    )
-    n = len(y_array)
+    rows = _shaped_rows(estimator, phi, y, weights, times)
+    n = len(rows[1])
     # Coefficients column-major: each term's series is contiguous, as the chunks write it.
     out = ReplayResult(
         np.empty((p, n)).T, np.empty(n), np.empty(n), np.empty(n), np.empty(n), np.empty(n)
     )
-    rows = (phi_array, y_array, weight_array, time_array)
-    start = 0
     kernel = _kernel() if USE_KERNEL and estimator.window is None and n else None
-    if kernel is not None:
-        if estimator._time is None:  # the first row sets the clock
-            _replay_per_sample(estimator, *rows, 0, 1, out)
-            start = 1
-        if start == n or _replay_compiled(kernel, estimator, *rows, start, out):
-            return out
-    _replay_blocks(estimator, *rows, start, out)
+    # The kernel checks the values as it goes, on copies of the state: if it refuses a row
+    # the estimator is as it was, and `_check_values` below says what is wrong.
+    if kernel is not None and _replay_compiled(kernel, estimator, *rows, out):
+        return out
+    _check_values(estimator, *rows)
+    _replay_blocks(estimator, *rows, 0, out)
     return out
 
 
@@ -169,13 +164,14 @@ def _replay_blocks(
         start = stop
 
 
-def _validated_rows(
+def _shaped_rows(
     est: RecursiveEstimator,
     phi: ArrayLike,
     y: ArrayLike,
     weights: ArrayLike | None,
     times: ArrayLike | None,
 ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+    """The rows as float arrays of the right shapes (weights 1 and the last time if None)."""
     phi_array = np.asarray(phi, dtype=float)
     y_array = np.asarray(y, dtype=float)
     n = len(y_array)
@@ -189,21 +185,26 @@ def _validated_rows(
     time_array = np.full(n, last) if times is None else np.asarray(times, dtype=float)
     if weight_array.shape != (n,) or time_array.shape != (n,):
         raise InputError(f"replay needs weights and times of shape ({n},)")
-    for name, array in (
-        ("phi", phi_array),
-        ("y", y_array),
-        ("weights", weight_array),
-        ("times", time_array),
-    ):
+    return phi_array, y_array, weight_array, time_array
+
+
+def _check_values(
+    est: RecursiveEstimator,
+    phi: FloatArray,
+    y: FloatArray,
+    weights: FloatArray,
+    times: FloatArray,
+) -> None:
+    """InputError unless every number is finite, weights >= 0 and times do not decrease."""
+    for name, array in (("phi", phi), ("y", y), ("weights", weights), ("times", times)):
         if not np.all(np.isfinite(array)):
             raise InputError(f"replay {name} must be finite numbers (found NaN or infinity)")
-    if np.any(weight_array < 0):
+    if np.any(weights < 0):
         raise InputError("replay weights must be >= 0")
-    if n and (
-        np.any(np.diff(time_array) < 0) or (est.time is not None and time_array[0] < est.time)
+    if len(times) and (
+        np.any(np.diff(times) < 0) or (est.time is not None and times[0] < est.time)
     ):
         raise InputError("replay times must not decrease (nor start before the last update)")
-    return phi_array, y_array, weight_array, time_array
 
 
 def _kernel() -> ModuleType | None:
@@ -235,19 +236,18 @@ def _replay_compiled(
     y: FloatArray,
     weights: FloatArray,
     times: FloatArray,
-    start: int,
     out: ReplayResult,
 ) -> bool:
-    """Rows start.. by the compiled kernel; False, the estimator untouched, if it could not.
+    """All rows by the compiled kernel; False, the estimator untouched, if it could not.
 
-    The kernel works on copies of the state, which are taken over only if its end state is
-    finite (an overflow, for inputs the per-sample path would refuse as too large, leaves
-    the rows to the numpy path as before the kernel existed).
+    The kernel works on copies of the state, which are taken over only if it accepted every
+    row and its end state is finite (an overflow, for inputs the per-sample path would
+    refuse as too large, leaves the rows to the numpy path as before the kernel existed).
     """
-    clock, theta = _kernel_clock(kernel, est)
+    clock, theta = _kernel_clock(kernel, est, float(times[0]))
     factor = np.array(est._f, order="F")
     try:
-        kernel.replay_rows(
+        refused = kernel.replay_rows(
             (0,) * est.n_terms,  # its length is the number of terms the kernel unrolls for
             factor,
             np.ascontiguousarray(phi),
@@ -267,10 +267,12 @@ def _replay_compiled(
             out.residual_sd,
             out.prediction,
             out.residual,
-            start,
+            0,
         )
     except Exception as error:  # numba failing to compile or load, before any row ran
         _disable_kernel(error)
+        return False
+    if refused >= 0:
         return False
     learnt = clock[[kernel.G, kernel.COUNT, kernel.INFORMATION, kernel.PENALTY]]
     if not all(np.all(np.isfinite(a)) for a in (factor, learnt, theta)):
@@ -279,13 +281,23 @@ def _replay_compiled(
     return True
 
 
-def _kernel_clock(kernel: ModuleType, est: RecursiveEstimator) -> tuple[FloatArray, FloatArray]:
-    """The estimator's scalars as the kernel's `clock` array, and its cached θ (or zeros)."""
+def _kernel_clock(
+    kernel: ModuleType, est: RecursiveEstimator, first: float
+) -> tuple[FloatArray, FloatArray]:
+    """The estimator's scalars as the kernel's `clock` array, and its cached θ (or zeros).
+
+    An estimator that never learnt starts its clocks at the first row's time, as `_advance`
+    does for the first update.
+    """
     k = kernel
-    assert est._time is not None and est._g_time is not None and est._prior_ref_time is not None
     clock = np.zeros(k.CLOCK_SIZE)
-    clock[k.G], clock[k.G_TIME], clock[k.TIME] = est._g, est._g_time, est._time
-    clock[k.REF_WEIGHT], clock[k.REF_TIME] = est._prior_ref_weight, est._prior_ref_time
+    if est._time is None:
+        clock[k.G_TIME] = clock[k.TIME] = clock[k.REF_TIME] = first
+    else:
+        assert est._g_time is not None and est._prior_ref_time is not None
+        clock[k.G_TIME], clock[k.TIME] = est._g_time, est._time
+        clock[k.REF_TIME] = est._prior_ref_time
+    clock[k.G], clock[k.REF_WEIGHT] = est._g, est._prior_ref_weight
     clock[k.COUNT], clock[k.INFORMATION] = est._count, est._information
     clock[k.HALF_LIFE] = 0.0 if est.half_life is None else est.half_life
     clock[k.TOP_UP_AFTER], clock[k.PRIOR_TOP_UP] = est._top_up_after, PRIOR_TOP_UP
