@@ -169,6 +169,13 @@ class TestLongRuns:
             Rows(phi, y, rng.uniform(0.0, 2.0, n), times), half_life=3 * DAY
         )
 
+    def test_regular_samples(self) -> None:
+        """Exactly 1 min apart (the kernel then multiplies the forgetting on row by row,
+        computing it afresh every 64 rows) for 60,000 rows at a 2-day half-life."""
+        rows = random_rows(60_000, MINUTE, seed=20)
+        rows.times = MINUTE * np.arange(60_000.0)
+        assert_replay_equals_updates(rows, half_life=2 * DAY)
+
     def test_gap_of_hundreds_of_half_lives(self) -> None:
         """A gap of 200 half-lives: the forgetting g falls below 2⁻⁶⁴ and is multiplied into
         the factor, then the prior is topped up at the same row."""
