@@ -2,7 +2,7 @@
 
 Run from the repository root:
 
-    PYTHONPATH=daemon python bench/estimator.py            # full run, about 3 minutes
+    PYTHONPATH=daemon python bench/estimator.py            # full run, about 4 minutes
     PYTHONPATH=daemon python bench/estimator.py --quick    # 10x fewer rows, for a smoke test
 
 It prints, side by side in one run:

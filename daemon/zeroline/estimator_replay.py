@@ -13,9 +13,10 @@ Two paths, chosen once per call:
    top-ups, weights, square-root information factor and residual tracking; its module
    docstring has the details). numba is imported on the first replay, never by the daemon;
    the kernel is compiled once per install and number of terms (numba's disk cache). Measured
-   ~110 ns per row at p = 6, about 7× the numpy path below (bench/RESULTS.md): per-call
-   overhead, not arithmetic, was what held the numpy path back. It runs on copies of the
-   state and the estimator takes the end state over only if it is finite.
+   ~100–125 ns per row at p = 6, 4–6× the numpy path below in the same rounds
+   (bench/RESULTS.md): numpy's per-call overhead, not the arithmetic, held that path back.
+   It checks the rows as it goes and runs on copies of the state; the estimator takes the
+   end state over only if every row was valid and the state is finite.
 2. **The numpy block path** (the rest of this module), when numba is missing or the kernel
    fails to load or compile (logged once, one line) or `USE_KERNEL` is False; the tests run
    both paths against the per-sample path.
@@ -41,8 +42,8 @@ per-call cost (~0.3 µs per ufunc, ~1.5 µs per einsum, paid per step for all bl
 against the start states (paid per block); chunks over ~32k rows measured no faster.
 
 An exact window replays per sample on either path (its rows leave one by one; no vectorised
-form is exact), and so does the very first row (it sets the clock) and, on the numpy path,
-any run too short to vectorise.
+form is exact). On the numpy path so do the very first row (it sets the clock) and any run
+too short to vectorise.
 """
 
 from __future__ import annotations
