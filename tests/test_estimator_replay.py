@@ -370,3 +370,20 @@ def test_the_daemon_does_not_import_numba() -> None:
         env={"PYTHONPATH": str(daemon), "PATH": ""},
     )
     assert result.stdout.strip() == "False"
+
+
+@pytest.mark.usefixtures("replay_path")
+def test_strided_and_fortran_ordered_input() -> None:
+    """Columns of a wider table (strided y, weights, times) and a Fortran-ordered φ replay
+    as contiguous copies of them do."""
+    rows = random_rows(5_000, MINUTE, seed=21)
+    table = np.column_stack([rows.y, rows.weights, rows.times, rows.phi])
+    phi = np.asfortranarray(rows.phi)
+    strided = replay_batch(
+        RecursiveEstimator(6, half_life=DAY), phi, table[:, 0], table[:, 1], table[:, 2]
+    )
+    plain = replay_batch(
+        RecursiveEstimator(6, half_life=DAY), rows.phi, rows.y, rows.weights, rows.times
+    )
+    assert np.array_equal(strided.coefficients, plain.coefficients)
+    assert np.array_equal(strided.residual_sd, plain.residual_sd, equal_nan=True)

@@ -247,18 +247,20 @@ def _replay_compiled(
     """
     clock, theta = _kernel_clock(kernel, est, float(times[0]))
     factor = np.array(est._f, order="F")
+    # Contiguous arrays only (no copy if they are): numba compiles once per memory layout.
+    contiguous = np.ascontiguousarray
     try:
         refused = kernel.replay_rows(
             (0,) * est.n_terms,  # its length is the number of terms the kernel unrolls for
             factor,
-            np.ascontiguousarray(phi),
-            y,
-            weights,
-            times,
+            contiguous(phi),
+            contiguous(y),
+            contiguous(weights),
+            contiguous(times),
             est._scale,
             est.column_scale is not None,
-            np.ascontiguousarray(est._prior_rows),
-            np.ascontiguousarray(est._prior_center),
+            contiguous(est._prior_rows),
+            contiguous(est._prior_center),
             est._prior_root,
             clock,
             theta,
