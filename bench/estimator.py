@@ -2,16 +2,19 @@
 
 Run from the repository root:
 
-    PYTHONPATH=daemon python bench/estimator.py            # full run, about 3 minutes
+    PYTHONPATH=daemon python bench/estimator.py            # full run, about 4 minutes
     PYTHONPATH=daemon python bench/estimator.py --quick    # 10x fewer rows, for a smoke test
 
 It prints, side by side in one run:
 1. µs per update for p = 2, 6, 12: zeroline's `update` and a plain numpy textbook update
    (k = Pφ/(λ + φᵀPφ); θ += k·e; P ← (P − kφᵀP)/λ) on the same rows;
-2. replay throughput for 1e6 samples at p = 6: `replay_batch` (with and without forgetting)
-   and statsmodels `RecursiveLS(...).filter()` (its recursive coefficients and residuals need
-   only the filter; `fit()` also runs the smoother twice and is slower), 7 rounds after one
-   untimed run of each, with the minimum and median of the per-round ratios;
+2. replay throughput for 1e6 samples at p = 6: `replay_batch` by its compiled kernel (with
+   and without forgetting), by its numpy block path (the fallback without numba; with
+   forgetting) and statsmodels `RecursiveLS(...).filter()` (its recursive coefficients and
+   residuals need only the filter; `fit()` also runs the smoother twice and is slower), 7
+   rounds after one untimed run of each, with the minimum and median of the per-round
+   ratios; before them, the kernel's first-call time (numba's import and compile, once with
+   an empty cache in a child process and once in this process);
 3. the relative error of the fitted baseline after 1e6 per-sample updates, for both forms,
    against the weighted batch least-squares fit over the same rows (scipy lstsq of the
    √weight-scaled rows plus the prior's pseudo-rows).
@@ -36,6 +39,9 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 import argparse
 import math
 import platform
+import subprocess
+import sys
+import tempfile
 import time
 from collections.abc import Callable
 
@@ -43,6 +49,7 @@ import numpy as np
 import scipy.linalg
 from statsmodels.regression.recursive_ls import RecursiveLS
 
+from zeroline import estimator_replay
 from zeroline.estimator import RecursiveEstimator, replay_batch
 
 MINUTE = 60.0
@@ -149,49 +156,116 @@ def per_update_costs(n: int, rounds: int = 9) -> None:
         )
 
 
+def replay(
+    half_life: float | None, kernel: bool, phi: np.ndarray, y: np.ndarray, t: np.ndarray
+) -> None:
+    """One replay_batch of all rows on a new estimator, by the kernel or the numpy path."""
+    estimator_replay.USE_KERNEL = kernel
+    try:
+        replay_batch(RecursiveEstimator(6, half_life=half_life), phi, y, None, t)
+    finally:
+        estimator_replay.USE_KERNEL = True
+
+
+_FIRST_CALL = """
+import time
+start = time.perf_counter()
+import numpy as np
+from zeroline.estimator import RecursiveEstimator, replay_batch
+from zeroline import estimator_replay
+t = 60.0 * np.arange(100.0)
+replay_batch(RecursiveEstimator(6, half_life=7 * 86400.0), np.ones((100, 6)), np.ones(100), None, t)
+assert estimator_replay._kernel_module is not None
+print(time.perf_counter() - start)
+"""
+
+
+def first_call_seconds() -> tuple[float, float, bool]:
+    """Seconds of the first replay in a process, by the kernel: with an empty numba cache
+    (a child process; numba's import and the compile) and in this process (the import and
+    the load from the cache, or the compile if this install has no cache yet), and whether
+    this process loaded it from the cache."""
+    with tempfile.TemporaryDirectory() as cache:
+        child = subprocess.run(
+            [sys.executable, "-c", _FIRST_CALL],
+            capture_output=True,
+            text=True,
+            check=True,
+            env={**os.environ, "NUMBA_CACHE_DIR": cache},
+        )
+    start = time.perf_counter()
+    replay_batch(
+        RecursiveEstimator(6, half_life=HALF_LIFE),
+        np.ones((100, 6)),
+        np.ones(100),
+        None,
+        MINUTE * np.arange(100.0),
+    )
+    here = time.perf_counter() - start
+    kernel = estimator_replay._kernel_module
+    if kernel is None:
+        raise SystemExit("the compiled replay kernel did not load (see the warning above)")
+    loaded = sum(kernel.replay_rows.stats.cache_hits.values()) > 0
+    return float(child.stdout), here, loaded
+
+
 def replay_throughput(n: int, rounds: int = 7) -> None:
     """Samples/s of the replay and of statsmodels, and the ratio in each round.
 
     Each side runs once untimed first: the first run in a process pays the page faults of
     its freshly mapped result arrays (statsmodels' filter keeps the k x k state covariances
     of every row, ~0.6 GB here, and its first run measured 1.7-4.5x slower than later ones),
-    which is not a cost of the method. The ratios are taken round by round (the order
-    alternating), and both their minimum and median are printed: the target is about every
-    round.
+    and the kernel's first call its compile or load (printed apart), which is not a cost of
+    the method. The ratios are taken round by round (the order alternating), and both their
+    minimum and median are printed: the target is about every round.
     """
     print(f"2. replay of {n} samples at p = 6 ({rounds} interleaved rounds after one")
     print("   untimed run of each; samples/s)")
+    cold, warm, loaded = first_call_seconds()
+    print(
+        f"   kernel's first call (100 rows, numba imported): {cold:.2f} s with an empty cache"
+        f" (the compile), {warm:.2f} s in this process"
+        f" ({'loaded from the cache' if loaded else 'compiled: no cache yet'})"
+    )
     phi, y, t = random_basis(n, 6, seed=60)
     labels = [
-        "zeroline replay_batch, half_life 7d",
-        "zeroline replay_batch, no forgetting",
+        "zeroline replay_batch kernel, half_life 7d",
+        "zeroline replay_batch kernel, no forgetting",
+        "zeroline replay_batch numpy path, half_life 7d",
         "statsmodels RecursiveLS.filter(), no forg.",
     ]
     runs: list[Callable[[], object]] = [
-        lambda: replay_batch(RecursiveEstimator(6, half_life=HALF_LIFE), phi, y, None, t),
-        lambda: replay_batch(RecursiveEstimator(6), phi, y, None, t),
+        lambda: replay(HALF_LIFE, True, phi, y, t),
+        lambda: replay(None, True, phi, y, t),
+        lambda: replay(HALF_LIFE, False, phi, y, t),
         lambda: RecursiveLS(y, phi).filter(),
     ]
     for run in runs:
         run()
     table = interleaved(rounds, runs)
     rates = n / table
-    print(f"   {'path':<44} {'best':>11} {'median':>11}   ns/row (best)   per round")
+    print(f"   {'path':<47} {'best':>11} {'median':>11}   ns/row (best)   per round")
     for index, label in enumerate(labels):
         per_round = " ".join(f"{rate:,.0f}" for rate in rates[:, index])
         print(
-            f"   {label:<44} {rates[:, index].max():>11,.0f}"
+            f"   {label:<47} {rates[:, index].max():>11,.0f}"
             f" {np.median(rates[:, index]):>11,.0f}   {1e9 / rates[:, index].max():>8.0f}"
             f"        {per_round}"
         )
-    for index, label in enumerate(labels[:2]):
-        ratios = rates[:, index] / rates[:, 2]
-        bests = rates[:, index].max() / rates[:, 2].max()
+    for index, label in enumerate(labels[:3]):
+        ratios = rates[:, index] / rates[:, 3]
+        bests = rates[:, index].max() / rates[:, 3].max()
+        short = label.removeprefix("zeroline replay_batch ")
         print(
-            f"   ratio to statsmodels, {label[23:]:<20} best/best {bests:5.1f}"
+            f"   ratio to statsmodels, {short:<28} best/best {bests:5.1f}"
             f"  per round min {ratios.min():5.1f} median {np.median(ratios):5.1f}  rounds "
             + " ".join(f"{r:.1f}" for r in ratios)
         )
+    gain = rates[:, 0] / rates[:, 2]
+    print(
+        f"   kernel / numpy path, half_life 7d: per round min {gain.min():.1f}"
+        f" median {np.median(gain):.1f}"
+    )
 
 
 def batch_baseline(

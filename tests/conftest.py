@@ -74,3 +74,21 @@ def broker(mosquitto_bin: str) -> Iterator[Any]:
     server.start()
     yield server
     server.cleanup()
+
+
+@pytest.fixture(params=["kernel", "numpy"])
+def replay_path(request: pytest.FixtureRequest, monkeypatch: pytest.MonkeyPatch) -> Iterator[str]:
+    """Run the test with `replay_batch`'s compiled kernel, then with its numpy block path.
+
+    numba is a dependency, so on the "kernel" side the kernel must load and must not have
+    given up (a compile failure falls back to the numpy path with a warning): the test fails
+    instead of quietly testing the numpy path twice.
+    """
+    import zeroline.estimator_replay as replay
+
+    monkeypatch.setattr(replay, "USE_KERNEL", request.param == "kernel")
+    if request.param == "kernel":
+        assert replay._kernel() is not None, "the compiled replay kernel did not load"
+    yield str(request.param)
+    if request.param == "kernel":
+        assert not replay._kernel_failed, "the compiled replay kernel failed; see the log"

@@ -10,12 +10,15 @@ from __future__ import annotations
 
 import json
 from dataclasses import dataclass
+from unittest import mock
 
 import numpy as np
+import pytest
 import scipy.linalg
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from zeroline import estimator_replay
 from zeroline.estimator import PRIOR_TOP_UP, RecursiveEstimator, replay_batch
 from zeroline.lsq import fit_least_squares
 
@@ -141,14 +144,18 @@ def test_variance_never_exceeds_the_prior(stream: Stream) -> None:
     assert np.all(np.isfinite(est.covariance))
 
 
+@pytest.mark.parametrize("kernel", [True, False], ids=["kernel", "numpy"])
 @PROPERTY
-@given(streams())
-def test_replay_equals_per_sample(stream: Stream) -> None:
-    """replay_batch gives the per-sample path's coefficients after every row (1e-9 in the
-    fitted values) and the same final state."""
+@given(stream=streams())
+def test_replay_equals_per_sample(kernel: bool, stream: Stream) -> None:
+    """replay_batch, by its compiled kernel and by its numpy path, gives the per-sample path's
+    coefficients after every row (1e-9 in the fitted values) and the same final state."""
     slow, fast = make(stream), make(stream)
     phi, y, w, t = stream.phi, stream.y, stream.w, stream.t
-    out = replay_batch(fast, phi, y, w, t)
+    with mock.patch.object(estimator_replay, "USE_KERNEL", kernel):
+        out = replay_batch(fast, phi, y, w, t)
+    if kernel and stream.memory != "window":
+        assert estimator_replay._kernel() is not None and not estimator_replay._kernel_failed
     for i in range(len(y)):
         slow.update(phi[i], y[i], w[i], t[i])
         assert close(out.coefficients[i], slow.coefficients, 1e-9, phi[: i + 1])

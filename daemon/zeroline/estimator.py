@@ -70,8 +70,10 @@ so an automatic rescaling would not change a digit: the collinearity measure
 
 Replay fast path
 ----------------
-`replay_batch` (module `zeroline.estimator_replay`, re-exported here) learns recorded rows in
-vectorised chunks, with every row's results and the same end state as per-sample `update`.
+`replay_batch` (module `zeroline.estimator_replay`, re-exported here) learns recorded rows
+with every row's results and the same end state as per-sample `update`: by this recursion
+compiled (`zeroline.estimator_kernel`, numba, imported on the first replay only) or, without
+numba, in vectorised numpy chunks.
 
 Threads: every matrix here is at most 13 wide. Multi-threaded OpenBLAS gains nothing at that
 size and, on a busy 2-core gateway, waking its threads made single LAPACK calls with many

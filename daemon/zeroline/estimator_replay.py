@@ -1,4 +1,4 @@
-"""Replay fast path: learn recorded rows as `RecursiveEstimator.update` would, vectorised.
+"""Replay fast path: learn recorded rows as `RecursiveEstimator.update` would, fast.
 
 `replay_batch(estimator, phi, y, weights, times)` gives every row's coefficients, baseline,
 variance, σ̂ and innovation, equal to n calls of `update` (within rounding), and leaves the
@@ -6,37 +6,54 @@ estimator in the state those calls would.
 
 Approach
 --------
-Rows are processed in chunks. In the coordinates u = R₀(θ − θ₀) of a chunk's exact starting
-factor R₀ the start state is the identity, so the normal equations of every row inside the
-chunk, *preconditioned by R₀*, are well conditioned as long as the chunk is short enough
-(≤ 2 half-lives and added information of trace ≤ _CHUNK_TRACE: every row's matrix then lies
-between I and (1 + 4.25 + 32)·I, condition below 40). A chunk's rows are cut into ~630 blocks
-of up to 32 rows. Every block starts from its exact state, solved from prefix sums of the
-blocks before it (one small sum per block, one batched Cholesky for all starts), and then
-runs the covariance recursion (k = Pψ, P ← P − c·k·kᵀ) over its few rows, all blocks side by
-side in each numpy call; a prior top-up inside a block restarts it from its exact state.
-The state at the chunk's end is recomputed exactly by one structured QR (`dtpqrt`) of all
-the chunk's rows under the starting factor, so rounding never accumulates from chunk to
-chunk, nor from block to block.
+Two paths, chosen once per call:
 
-Cost per row (p = 6, 1e6 rows, bench/RESULTS.md; shares from a profile on a loaded machine):
-the recursion about 30 % (its Pψ and P update are 36 products each, which numpy does at
-~0.4–0.9 ns), the block starts 18 %, the per-row results 16 %, planning 9 %, the end QR with
-its stacked rows 8 %, input checks 5 %. The previous form (a cumulative sum per matrix entry
-and a Cholesky per row) measured 1.1–1.3× slower in interleaved runs. ~630 blocks per chunk
-balance numpy's per-call cost (~0.3 µs per ufunc, ~1.5 µs per einsum, paid per step for all
-blocks at once) against the start states (paid per block); chunks over ~32k rows measured
-no faster (likely because their arrays no longer fit the 2 MB L2 cache; not verified).
+1. **The compiled kernel** (`zeroline.estimator_kernel`, numba), used whenever it loads: the
+   per-sample recursion itself, row by row in machine code (the same forgetting, prior
+   top-ups, weights, square-root information factor and residual tracking; its module
+   docstring has the details). numba is imported on the first replay, never by the daemon;
+   the kernel is compiled once per install and number of terms (numba's disk cache). Measured
+   ~100–125 ns per row at p = 6, 4–6× the numpy path below in the same rounds
+   (bench/RESULTS.md): numpy's per-call overhead, not the arithmetic, held that path back.
+   It checks the rows as it goes and runs on copies of the state; the estimator takes the
+   end state over only if every row was valid and the state is finite.
+2. **The numpy block path** (the rest of this module), when numba is missing or the kernel
+   fails to load or compile (logged once, one line) or `USE_KERNEL` is False; the tests run
+   both paths against the per-sample path.
 
-An exact window replays per sample (its rows leave one by one; no vectorised form is exact),
-and so does the very first row (it sets the clock) and any run too short to vectorise.
+The numpy block path processes rows in chunks. In the coordinates u = R₀(θ − θ₀) of a chunk's
+exact starting factor R₀ the start state is the identity, so the normal equations of every
+row inside the chunk, *preconditioned by R₀*, are well conditioned as long as the chunk is
+short enough (≤ 2 half-lives and added information of trace ≤ _CHUNK_TRACE: every row's
+matrix then lies between I and (1 + 4.25 + 32)·I, condition below 40). A chunk's rows are cut
+into ~630 blocks of up to 32 rows. Every block starts from its exact state, solved from
+prefix sums of the blocks before it (one small sum per block, one batched Cholesky for all
+starts), and then runs the covariance recursion (k = Pψ, P ← P − c·k·kᵀ) over its few rows,
+all blocks side by side in each numpy call; a prior top-up inside a block restarts it from
+its exact state. The state at the chunk's end is recomputed exactly by one structured QR
+(`dtpqrt`) of all the chunk's rows under the starting factor, so rounding never accumulates
+from chunk to chunk, nor from block to block.
+
+Cost per row of the numpy path (p = 6, 1e6 rows, bench/RESULTS.md; shares from a profile on
+a loaded machine): the recursion about 30 % (its Pψ and P update are 36 products each, which
+numpy does at ~0.4–0.9 ns), the block starts 18 %, the per-row results 16 %, planning 9 %,
+the end QR with its stacked rows 8 %, input checks 5 %. ~630 blocks per chunk balance numpy's
+per-call cost (~0.3 µs per ufunc, ~1.5 µs per einsum, paid per step for all blocks at once)
+against the start states (paid per block); chunks over ~32k rows measured no faster.
+
+An exact window replays per sample on either path (its rows leave one by one; no vectorised
+form is exact). On the numpy path so do the very first row (it sets the clock) and any run
+too short to vectorise.
 """
 
 from __future__ import annotations
 
+import importlib
+import logging
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from types import ModuleType
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -44,6 +61,13 @@ from scipy.linalg import lapack
 
 from zeroline.errors import InputError
 from zeroline.estimator import PRIOR_TOP_UP, FloatArray, RecursiveEstimator, _absorb
+
+#: Replay with the compiled kernel (`estimator_kernel`, numba) when it loads; False runs the
+#: numpy block path below (the tests run both against the per-sample path).
+USE_KERNEL = True
+_LOG = logging.getLogger(__name__)
+_kernel_module: ModuleType | None = None
+_kernel_failed = False
 
 _CHUNK_ROWS = 32768  # most rows in one vectorised chunk
 _CHUNK_HALF_LIVES = 2.0  # longest span of a chunk, in half-lives
@@ -79,9 +103,11 @@ def replay_batch(
     """Learn rows phi (n, p), y (n) with fixed weights at times (n), as n calls of `update`.
 
     The estimator ends in the same state as after the per-sample calls and the returned
-    per-row arrays equal theirs (measured ≤ 4e-13 relative on well-conditioned bases, 2.3e-11
-    on raw-second time terms; tests/test_estimator_replay.py). With forgetting or none the
-    work is vectorised in chunks; an exact window replays per sample.
+    per-row arrays equal theirs (measured ≤ 4e-13 relative on well-conditioned bases, 4e-11
+    on raw-second time terms, 3.3e-10 on an early, prior-dominated row where the per-sample
+    path itself is that far from the exact solution; tests/test_estimator_replay.py). With
+    forgetting or none the compiled kernel (or, without numba, the numpy block path) runs
+    the rows; an exact window replays per sample.
     `coefficients` is column-major (each term's series contiguous; index it as usual).
 
     >>> import numpy as np
@@ -93,46 +119,60 @@ def replay_batch(
     [2.0, 0.5]
     """
     p = estimator.n_terms
-    phi_array, y_array, weight_array, time_array = _validated_rows(
-        estimator, phi, y, weights, times
-    )
-    n = len(y_array)
+    rows = _shaped_rows(estimator, phi, y, weights, times)
+    n = len(rows[1])
     # Coefficients column-major: each term's series is contiguous, as the chunks write it.
     out = ReplayResult(
         np.empty((p, n)).T, np.empty(n), np.empty(n), np.empty(n), np.empty(n), np.empty(n)
     )
-    # Internal units; without a column scale φ itself (a division would be a pass per row).
-    x = phi_array if estimator.column_scale is None else phi_array / estimator._scale
-    start = 0
-    while start < n:
-        if estimator.window is not None or estimator._time is None:
-            stop = n if estimator.window is not None else start + 1
-            _replay_per_sample(
-                estimator, phi_array, y_array, weight_array, time_array, start, stop, out
-            )
-            start = stop
-            continue
-        chunk = _plan_chunk(estimator, x, weight_array, time_array, start)
-        if chunk.stop - chunk.start < _CHUNK_MIN:
-            stop = min(n, start + _CHUNK_MIN)
-            _replay_per_sample(
-                estimator, phi_array, y_array, weight_array, time_array, start, stop, out
-            )
-        else:
-            stop = chunk.stop
-            prepared = _prepare_chunk(estimator, x, y_array, weight_array, chunk, time_array)
-            _finish_chunk(estimator, y_array, prepared, out)
-        start = stop
+    kernel = _kernel() if USE_KERNEL and estimator.window is None and n else None
+    # The kernel checks the values as it goes, on copies of the state: if it refuses a row
+    # the estimator is as it was, and `_check_values` below says what is wrong.
+    if kernel is not None and _replay_compiled(kernel, estimator, *rows, out):
+        return out
+    _check_values(estimator, *rows)
+    _replay_blocks(estimator, *rows, 0, out)
     return out
 
 
-def _validated_rows(
+def _replay_blocks(
+    estimator: RecursiveEstimator,
+    phi: FloatArray,
+    y: FloatArray,
+    weights: FloatArray,
+    times: FloatArray,
+    start: int,
+    out: ReplayResult,
+) -> None:
+    """Rows start.. by the numpy block recursion (per sample where it cannot vectorise)."""
+    n = len(y)
+    # Internal units; without a column scale φ itself (a division would be a pass per row).
+    x = phi if estimator.column_scale is None else phi / estimator._scale
+    while start < n:
+        if estimator.window is not None or estimator._time is None:
+            stop = n if estimator.window is not None else start + 1
+            _replay_per_sample(estimator, phi, y, weights, times, start, stop, out)
+            start = stop
+            continue
+        chunk = _plan_chunk(estimator, x, weights, times, start)
+        if chunk.stop - chunk.start < _CHUNK_MIN:
+            stop = min(n, start + _CHUNK_MIN)
+            _replay_per_sample(estimator, phi, y, weights, times, start, stop, out)
+        else:
+            stop = chunk.stop
+            prepared = _prepare_chunk(estimator, x, y, weights, chunk, times)
+            _finish_chunk(estimator, y, prepared, out)
+        start = stop
+
+
+def _shaped_rows(
     est: RecursiveEstimator,
     phi: ArrayLike,
     y: ArrayLike,
     weights: ArrayLike | None,
     times: ArrayLike | None,
 ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+    """The rows as float arrays of the right shapes (weights 1 and the last time if None)."""
     phi_array = np.asarray(phi, dtype=float)
     y_array = np.asarray(y, dtype=float)
     n = len(y_array)
@@ -146,21 +186,147 @@ def _validated_rows(
     time_array = np.full(n, last) if times is None else np.asarray(times, dtype=float)
     if weight_array.shape != (n,) or time_array.shape != (n,):
         raise InputError(f"replay needs weights and times of shape ({n},)")
-    for name, array in (
-        ("phi", phi_array),
-        ("y", y_array),
-        ("weights", weight_array),
-        ("times", time_array),
-    ):
+    return phi_array, y_array, weight_array, time_array
+
+
+def _check_values(
+    est: RecursiveEstimator,
+    phi: FloatArray,
+    y: FloatArray,
+    weights: FloatArray,
+    times: FloatArray,
+) -> None:
+    """InputError unless every number is finite, weights >= 0 and times do not decrease."""
+    for name, array in (("phi", phi), ("y", y), ("weights", weights), ("times", times)):
         if not np.all(np.isfinite(array)):
             raise InputError(f"replay {name} must be finite numbers (found NaN or infinity)")
-    if np.any(weight_array < 0):
+    if np.any(weights < 0):
         raise InputError("replay weights must be >= 0")
-    if n and (
-        np.any(np.diff(time_array) < 0) or (est.time is not None and time_array[0] < est.time)
+    if len(times) and (
+        np.any(np.diff(times) < 0) or (est.time is not None and times[0] < est.time)
     ):
         raise InputError("replay times must not decrease (nor start before the last update)")
-    return phi_array, y_array, weight_array, time_array
+
+
+def _kernel() -> ModuleType | None:
+    """The compiled kernel's module, imported on first use; None (logged once) if numba is
+    missing or fails to load."""
+    global _kernel_module, _kernel_failed
+    if _kernel_module is None and not _kernel_failed:
+        try:
+            _kernel_module = importlib.import_module("zeroline.estimator_kernel")
+        except Exception as error:  # ImportError, or numba's own failure to initialise
+            _disable_kernel(error)
+    return _kernel_module
+
+
+def _disable_kernel(error: Exception) -> None:
+    global _kernel_module, _kernel_failed
+    _kernel_module, _kernel_failed = None, True
+    _LOG.warning(
+        "replay: compiled kernel unavailable (%s: %s); using the numpy block path",
+        type(error).__name__,
+        error,
+    )
+
+
+def _replay_compiled(
+    kernel: ModuleType,
+    est: RecursiveEstimator,
+    phi: FloatArray,
+    y: FloatArray,
+    weights: FloatArray,
+    times: FloatArray,
+    out: ReplayResult,
+) -> bool:
+    """All rows by the compiled kernel; False, the estimator untouched, if it could not.
+
+    The kernel works on copies of the state, which are taken over only if it accepted every
+    row and its end state is finite (an overflow, for inputs the per-sample path would
+    refuse as too large, leaves the rows to the numpy path as before the kernel existed).
+    """
+    clock, theta = _kernel_clock(kernel, est, float(times[0]))
+    factor = np.array(est._f, order="F")
+    # Contiguous arrays only (no copy if they are): numba compiles once per memory layout.
+    contiguous = np.ascontiguousarray
+    try:
+        refused = kernel.replay_rows(
+            (0,) * est.n_terms,  # its length is the number of terms the kernel unrolls for
+            factor,
+            contiguous(phi),
+            contiguous(y),
+            contiguous(weights),
+            contiguous(times),
+            est._scale,
+            est.column_scale is not None,
+            contiguous(est._prior_rows),
+            contiguous(est._prior_center),
+            est._prior_root,
+            clock,
+            theta,
+            out.coefficients,
+            out.baseline,
+            out.variance,
+            out.residual_sd,
+            out.prediction,
+            out.residual,
+            0,
+        )
+    except Exception as error:  # numba failing to compile or load, before any row ran
+        _disable_kernel(error)
+        return False
+    if refused >= 0:
+        return False
+    learnt = clock[[kernel.G, kernel.COUNT, kernel.INFORMATION, kernel.PENALTY]]
+    if not all(np.all(np.isfinite(a)) for a in (factor, learnt, theta)):
+        return False
+    _take_over(kernel, est, factor, clock, theta)
+    return True
+
+
+def _kernel_clock(
+    kernel: ModuleType, est: RecursiveEstimator, first: float
+) -> tuple[FloatArray, FloatArray]:
+    """The estimator's scalars as the kernel's `clock` array, and its cached θ (or zeros).
+
+    An estimator that never learnt starts its clocks at the first row's time, as `_advance`
+    does for the first update.
+    """
+    k = kernel
+    clock = np.zeros(k.CLOCK_SIZE)
+    if est._time is None:
+        clock[k.G_TIME] = clock[k.TIME] = clock[k.REF_TIME] = first
+    else:
+        assert est._g_time is not None and est._prior_ref_time is not None
+        clock[k.G_TIME], clock[k.TIME] = est._g_time, est._time
+        clock[k.REF_TIME] = est._prior_ref_time
+    clock[k.G], clock[k.REF_WEIGHT] = est._g, est._prior_ref_weight
+    clock[k.COUNT], clock[k.INFORMATION] = est._count, est._information
+    clock[k.HALF_LIFE] = 0.0 if est.half_life is None else est.half_life
+    clock[k.TOP_UP_AFTER], clock[k.PRIOR_TOP_UP] = est._top_up_after, PRIOR_TOP_UP
+    theta = np.zeros(est.n_terms)
+    if est._theta is not None:
+        theta[:] = est._theta
+        clock[k.SOLVED], clock[k.PENALTY] = 1.0, est._penalty
+    return clock, theta
+
+
+def _take_over(
+    kernel: ModuleType,
+    est: RecursiveEstimator,
+    factor: FloatArray,
+    clock: FloatArray,
+    theta: FloatArray,
+) -> None:
+    """Set the estimator to the kernel's end state."""
+    k = kernel
+    est._time = float(clock[k.TIME])  # first: the factor is set as the one at the current time
+    est._factor = factor
+    est._g, est._g_time = float(clock[k.G]), float(clock[k.G_TIME])
+    est._prior_ref_weight = float(clock[k.REF_WEIGHT])
+    est._prior_ref_time = float(clock[k.REF_TIME])
+    est._count, est._information = float(clock[k.COUNT]), float(clock[k.INFORMATION])
+    est._theta, est._penalty = theta, float(clock[k.PENALTY])
 
 
 def _replay_per_sample(
