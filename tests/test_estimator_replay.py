@@ -307,14 +307,15 @@ class TestKernelFallback:
         self, monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture
     ) -> None:
         """An import failure is logged once (one line) and the replay still equals updates."""
-        monkeypatch.setitem(sys.modules, "zeroline.estimator_kernel", None)  # import fails
+        monkeypatch.setitem(sys.modules, "numba", None)  # as if not installed
+        monkeypatch.delitem(sys.modules, "zeroline.estimator_kernel", raising=False)
         with caplog.at_level(logging.WARNING, logger=replay.__name__):
             assert_replay_equals_updates(random_rows(3_000, MINUTE, seed=15), half_life=DAY)
             assert_replay_equals_updates(random_rows(3_000, MINUTE, seed=16), half_life=DAY)
         warnings = [r.getMessage() for r in caplog.records]
         assert len(warnings) == 1 and "\n" not in warnings[0]
         assert "compiled kernel unavailable (ModuleNotFoundError" in warnings[0]
-        assert "numpy block path" in warnings[0]
+        assert "numpy block path (install zeroline[replay] for it: numba)" in warnings[0]
 
     @pytest.mark.usefixtures("fresh_loader")
     def test_a_kernel_that_fails_to_compile_leaves_the_estimator_to_the_numpy_path(

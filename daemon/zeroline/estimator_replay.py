@@ -215,18 +215,20 @@ def _kernel() -> ModuleType | None:
     if _kernel_module is None and not _kernel_failed:
         try:
             _kernel_module = importlib.import_module("zeroline.estimator_kernel")
-        except Exception as error:  # ImportError, or numba's own failure to initialise
-            _disable_kernel(error)
+        except Exception as error:  # numba missing, or its own failure to initialise
+            missing = isinstance(error, ModuleNotFoundError) and error.name == "numba"
+            _disable_kernel(error, "install zeroline[replay] for it: numba" if missing else "")
     return _kernel_module
 
 
-def _disable_kernel(error: Exception) -> None:
+def _disable_kernel(error: Exception, hint: str = "") -> None:
     global _kernel_module, _kernel_failed
     _kernel_module, _kernel_failed = None, True
     _LOG.warning(
-        "replay: compiled kernel unavailable (%s: %s); using the numpy block path",
+        "replay: compiled kernel unavailable (%s: %s); using the numpy block path%s",
         type(error).__name__,
         error,
+        f" ({hint})" if hint else "",
     )
 
 
