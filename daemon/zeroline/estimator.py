@@ -91,7 +91,7 @@ from typing import TYPE_CHECKING, Any, NamedTuple
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy.linalg import lapack
+from scipy.linalg import blas, lapack
 
 from zeroline.errors import InputError
 from zeroline.objects import shallow_copy
@@ -130,6 +130,20 @@ class Innovation(NamedTuple):
 # LAPACK handles fetched once; positional arguments, because f2py parses keywords slower.
 _dtpqrt = lapack.dtpqrt
 _dtrtrs = lapack.dtrtrs
+# BLAS level 1 on the per-sample path: a third of the call cost of the numpy equivalents
+# at p ≤ 12, with the same bits. `ndarray.dot` of two float64 vectors is BLAS ddot (numpy
+# multiplies a one-element pair as scalars instead: see `_dot`); a scaling is one correctly
+# rounded product per element however it is computed.
+_ddot, _dscal, _dcopy = blas.ddot, blas.dscal, blas.dcopy
+
+
+def _dot(x: FloatArray, y: FloatArray) -> float:
+    """x·y with the bits of `float(x.dot(y))`: ddot, or the product of a one-element pair
+    (numpy's scalar case; ddot would turn a −0.0 product into +0.0)."""
+    if x.shape[0] == 1:
+        return x.item(0) * y.item(0)
+    result: float = _ddot(x, y)
+    return result
 
 
 def _absorb(factor: FloatArray, rows: FloatArray) -> FloatArray:
@@ -329,7 +343,7 @@ class RecursiveEstimator:
     def _settle(self) -> None:
         """Multiply the pending forgetting g into G, so that G = F."""
         if self._g != 1.0:
-            self._f *= self._g
+            _dscal(self._g, self._f.ravel("F"))  # G is Fortran-ordered: a view, in place
             self._g, self._g_time = 1.0, self._time
 
     def _changed(self) -> None:
@@ -393,12 +407,12 @@ class RecursiveEstimator:
             raise InputError(f"weight must be a finite number >= 0, got {weight!r}")
         moment = self._checked_time(time)
         a = _dtrtrs(self._r, x, 0, 1)[0]  # a = G⁻ᵀφ (R = g·G), before forgetting
-        quadratic = float(a.dot(a))  # φᵀPφ = ‖R⁻ᵀφ‖² = ‖G⁻ᵀφ‖² / g²
+        quadratic: float = _ddot(a, a)  # φᵀPφ = ‖R⁻ᵀφ‖² = ‖G⁻ᵀφ‖² / g²
         if not math.isfinite(quadratic):
             raise InputError("phi must be finite numbers (no NaN, no infinity, not above 1e150)")
         if self._advance(moment):  # the prior was topped up or rows left the window
             a = _dtrtrs(self._r, x, 0, 1)[0]
-            quadratic = float(a.dot(a))
+            quadratic = _ddot(a, a)
         innovation = self._innovation(x, y, quadratic / (self._g * self._g))
         if weight > 0:
             self._learn(x, y, weight)
@@ -408,7 +422,7 @@ class RecursiveEstimator:
         """The innovation of φ, y against the current estimate, without learning anything."""
         x = self._internal(phi)
         a = _dtrtrs(self._r, x, 0, 1)[0]
-        return self._innovation(x, float(y), float(a.dot(a)) / (self._g * self._g))
+        return self._innovation(x, float(y), _ddot(a, a) / (self._g * self._g))
 
     def _internal(self, phi: ArrayLike) -> FloatArray:
         x = np.asarray(phi, dtype=float)
@@ -478,7 +492,7 @@ class RecursiveEstimator:
         theta = self._theta
         if theta is None:
             theta = self._solve()
-        prediction = float(x.dot(theta))  # φᵀθ
+        prediction = _dot(x, theta)  # φᵀθ
         sd = self._residual_sd(self._penalty)
         variance = sd * sd * (1.0 + baseline_variance)
         residual = y - prediction
@@ -489,7 +503,7 @@ class RecursiveEstimator:
         p = self.n_terms
         root = math.sqrt(weight) / self._g  # G absorbs the row divided by g
         row = self._row
-        np.multiply(x, root, out=self._row_x)
+        _dscal(root, _dcopy(x, self._row_x))  # x·root into the row's view, in place
         row[0, p] = y * root
         if self.window is not None:
             assert self._time is not None
@@ -586,7 +600,7 @@ class RecursiveEstimator:
         theta: FloatArray = _dtrtrs(self._r, self._z)[0]
         offset = theta - self._prior_center
         offset *= self._prior_root
-        self._theta, self._penalty = theta, float(offset.dot(offset))
+        self._theta, self._penalty = theta, _ddot(offset, offset)
         return theta
 
     def _solution(self) -> FloatArray:
@@ -627,7 +641,8 @@ class RecursiveEstimator:
         The published uncertainty of the baseline is √variance(φ)·residual_sd.
         """
         a = _dtrtrs(self._r, self._internal(phi), 0, 1)[0]
-        return float(a.dot(a)) / (self._g * self._g)
+        result: float = _ddot(a, a) / (self._g * self._g)
+        return result
 
     def spread(self, phi: FloatArray) -> tuple[float, FloatArray]:
         """(φᵀPφ, P·φ) for one row φ in the user's units, *not* multiplied by σ̂².
@@ -645,7 +660,7 @@ class RecursiveEstimator:
             solved /= g2 * self._scale
         elif g2 != 1.0:  # the channel settles g into G after every reading
             solved /= g2
-        return float(a.dot(a)) / g2, solved
+        return _ddot(a, a) / g2, solved
 
     def information_matrix(self) -> FloatArray:
         """info = RᵀR = Σ w·2^(−age/h)·φφᵀ + prior, in the user's units.
