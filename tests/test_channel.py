@@ -125,3 +125,19 @@ def test_a_forecast_function_is_refused_after_the_next_reading() -> None:
         forecast(times)
     fresh_mean, _ = channel._forecaster()(times)  # a new one, made after the reading, works
     assert np.all(np.isfinite(fresh_mean)) and not np.array_equal(fresh_mean, mean)
+
+
+def test_a_configured_epoch_reads_the_inputs_as_the_first_reading_epoch_does() -> None:
+    """With `epoch:` in the config the basis is bound when the channel is made; the inputs
+    it reads must still be looked up (they were not: a KeyError on the first reading). An
+    epoch equal to the first reading's time gives the same results bit for bit."""
+    configured = parse_config(CONFIG.replace("    memory:", f"    epoch: {START}\n    memory:"))
+    assert configured.channels[0].epoch == START
+    fixed = Channel(configured.channels[0])
+    first_reading = Channel(parse_config(CONFIG).channels[0])
+    for sample in _readings(100):
+        ours, _ = fixed.process(sample)
+        theirs, _ = first_reading.process(sample)
+        assert ours.coefficients is not None and theirs.coefficients is not None
+        assert ours.coefficients.tobytes() == theirs.coefficients.tobytes()
+        assert ours.to_json() == theirs.to_json()  # NaN (no σ̂ yet) is None there

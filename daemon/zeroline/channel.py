@@ -38,7 +38,7 @@ from zeroline.basis import Basis, Point
 from zeroline.channel_alerts import ChannelAlerts
 from zeroline.config import ChannelConfig
 from zeroline.errors import InputError
-from zeroline.estimator import RecursiveEstimator, pack_estimators, unpack_estimators
+from zeroline.estimator import RecursiveEstimator, dot, pack_estimators, unpack_estimators
 from zeroline.estimator import packed_layout as estimator_layout
 from zeroline.inputs import InputCache
 from zeroline.objects import shallow_copy
@@ -58,8 +58,9 @@ CONDITION_EVERY = 32
 FORECAST_POINTS = 200
 RATE_Z = 2.0  # a drift rate counts once it is this many standard uncertainties beyond zero
 INPUT_MEAN_TAU = 86400.0  # time constant of the input means that drift is judged at
-# BLAS handles fetched once; positional arguments, because f2py parses keywords slower.
-_dsyr, _dsymv = blas.dsyr, blas.dsymv
+# BLAS handles fetched once; positional arguments, because f2py parses keywords slower
+# (and a BLAS call costs a third of a numpy call on a vector of p ≤ 12 numbers).
+_dsyr, _dsymv, _ddot, _dscal = blas.dsyr, blas.dsymv, blas.ddot, blas.dscal
 _NON_FINITE_ROW = "phi must be finite numbers (no NaN, no infinity, not above 1e150)"
 
 
@@ -145,8 +146,10 @@ class SquaredInformation:
     window the estimator's own information is used instead (exact for unit weights).
 
     Only the upper triangle is kept up to date (BLAS dsyr/dsymv, one call each per
-    reading); `matrix()` mirrors it. The snapshot stores that triangle, so a restored
-    matrix computes exactly the same quadratic forms.
+    reading, and dscal for the forgetting); `matrix()` mirrors it. The snapshot stores that
+    triangle, so a restored matrix computes exactly the same quadratic forms. The matrix is
+    always contiguous (C order as unpacked, Fortran order once dsyr has returned it), so
+    its flat view is a view and dscal scales it in place.
     """
 
     __slots__ = ("_matrix", "_time", "half_life")
@@ -158,15 +161,15 @@ class SquaredInformation:
 
     def add(self, row: Array, weight_squared: float, time: float) -> None:
         if self.half_life is not None and self._time is not None:
-            self._matrix *= 4.0 ** (-(time - self._time) / self.half_life)
+            _dscal(4.0 ** (-(time - self._time) / self.half_life), self._matrix.ravel("K"))
         self._time = time
         self._matrix = _dsyr(weight_squared, row, 0, 1, 0, row.shape[0], self._matrix, 1)
 
     def quadratic(self, solved: Array, prior_precision: float) -> float:
         """vᵀ(S + prior_precision·I)v for v = `solved` (a channel's prior SD is one number
         for every term, so its information is a multiple of the identity)."""
-        data = float(_dsymv(1.0, self._matrix, solved).dot(solved))
-        return data + prior_precision * float(solved.dot(solved))
+        data = dot(_dsymv(1.0, self._matrix, solved), solved)
+        return data + prior_precision * _ddot(solved, solved)
 
     def matrix(self) -> Array:
         """S in full (the upper triangle mirrored)."""
@@ -250,7 +253,7 @@ class Channel:
         self._payload_inputs = tuple(
             (spec.name, spec.field) for spec in config.inputs.values() if spec.field is not None
         )
-        self._needed: tuple[str, ...] = ()  # the named inputs the bases read, once bound
+        self._needed = parts.needed  # the named inputs the bases read
         self._prior_variance = config.memory.prior_sd**2  # one prior SD for every term
         self.alerts = ChannelAlerts(self.name, config.alerts, cap=config.cap)
         if self._epoch is not None:
@@ -288,7 +291,9 @@ class Channel:
         The hot path (issue 10): one pass over the basis gives the row and its slope (the
         drift at the inputs' means re-evaluates only the terms that read an input); two
         triangular solves give each variance, so P is never formed; the covariance
-        matrices are read out only for a forecast.
+        matrices are read out only for a forecast. The vector operations are single BLAS
+        calls on the arrays the solves return (`dot`, a third of a numpy call's cost at
+        p ≤ 12, the same bits).
         """
         time = sample.time
         if time <= self._last_time:
@@ -301,22 +306,26 @@ class Channel:
         basis = self._basis
         assert basis is not None
         fields = sample.fields
+        inputs = self._inputs
         for name, key in self._payload_inputs:
             if key in fields:
-                self._inputs.put(name, time, fields[key])
-        t = time - (self._epoch or 0.0)
-        covariates, flags, missing = self._covariates(time)
-        if missing:
+                inputs.put(name, time, fields[key])
+        # The inputs the basis needs. A stale input's last value is used and flagged; one
+        # never seen makes the reading uncorrectable (QARTOD 9).
+        found = inputs.values(self._needed, time)
+        if found is None:
+            flags = [q.INPUT_STALE]
             return self._uncorrectable(sample, flags), self.alerts.on_missing(time, flags)
+        covariates, stale = found
+        flags = [q.INPUT_STALE] if stale else []
+        t = time - (self._epoch or 0.0)
         here = basis.point(t, covariates)
         phi = np.array(here[0])
-        phi_squared = float(phi.dot(phi))  # for the finiteness check and the wind-up test
+        phi_squared: float = _ddot(phi, phi)  # for the finiteness check and the wind-up test
         psi = self._gain.row(t, covariates) if self._gain else None
         if self._last_useful > -math.inf and time - self._last_useful > self.learn.max_gap:
             flags.append(q.EXTRAPOLATING)  # judged before this sample teaches anything
-        learned, check_error, z = self._learn(
-            sample, t, phi, psi, phi_squared, stale=q.INPUT_STALE in flags
-        )
+        learned, check_error, z = self._learn(sample, t, phi, psi, phi_squared, stale=stale)
         if learned:
             self._last_useful = time
         self._track_means(time, covariates)
@@ -344,7 +353,7 @@ class Channel:
         theta, sd = estimator.solution()
         gain_size = self._gain_size
         offset_theta = theta[gain_size:] if gain_size else theta
-        baseline = float(phi.dot(offset_theta))
+        baseline = dot(phi, offset_theta)
         established = estimator.effective_n >= self._min_samples
         if psi is None:
             gain = None
@@ -358,15 +367,15 @@ class Channel:
             row_variance = estimator.spread(np.concatenate([psi, phi]))[0]
         result = self._correct(
             sample,
-            baseline=baseline,
-            corrected=corrected,
-            uncertainty=sd * math.sqrt(max(sandwiched, 0.0)),
-            gain=gain,
-            drift_rate=float(np.array(here[1]).dot(offset_theta)),
-            flags=flags,
-            established=established,
-            learned=learned,
-            theta=theta,
+            baseline,
+            corrected,
+            sd * math.sqrt(max(sandwiched, 0.0)),
+            gain,
+            dot(np.array(here[1]), offset_theta),
+            flags,
+            established,
+            learned,
+            theta,
         )
         health = self._health(flags, phi_squared, psi, row_variance, established)
         alerts = self.alerts
@@ -383,7 +392,7 @@ class Channel:
             return result, events
         assert self._basis is not None
         held = self._basis.point_with(t, self._input_means, here)
-        drift = float(np.array(held[0]).dot(offset_theta))
+        drift = dot(np.array(held[0]), offset_theta)
         self.last_drift = drift
         # The rate's uncertainty costs solves, the forecast a covariance read-out: only
         # for a rule that watches them.
@@ -419,7 +428,7 @@ class Channel:
         magnitude (`_conservative_rate`)."""
         full = np.array([0.0] * self._gain_size + slope)
         _, sandwiched = self._variances(full)
-        rate = float(full[self._gain_size :].dot(offset_theta))
+        rate = dot(full[self._gain_size :], offset_theta)
         return _conservative_rate(rate, sd * math.sqrt(max(sandwiched, 0.0)))
 
     def _read_fit(self) -> _Fit:
@@ -489,17 +498,6 @@ class Channel:
             return
         self._basis = self.config.basis.with_epoch(epoch)
         self._gain = self.config.gain.with_epoch(epoch) if self.config.gain else None
-        needed = self._basis.variables | (self._gain.variables if self._gain else frozenset())
-        self._needed = tuple(sorted(needed))
-
-    def _covariates(self, time: float) -> tuple[dict[str, float], list[str], bool]:
-        """Inputs the basis needs: (values, flags, missing). A stale input's last value is
-        used and flagged; one never seen makes the reading uncorrectable (QARTOD 9)."""
-        found = self._inputs.values(self._needed, time)
-        if found is None:
-            return {}, [q.INPUT_STALE], True
-        values, stale = found
-        return values, [q.INPUT_STALE] if stale else [], False
 
     def _learn(
         self,
@@ -519,30 +517,34 @@ class Channel:
         """
         if stale:
             return False, None, None  # a stale covariate would teach a wrong shape
-        target, row, check_error = self._row(sample, phi, psi)
-        if row is None:
-            return False, None, None
+        learn = self.learn
+        if learn.mode != "reference":
+            target, row, check_error = sample.value - learn.nominal, phi, None
+        else:
+            target, maybe_row, check_error = self._reference_row(sample, phi, psi)
+            if maybe_row is None:
+                return False, None, None
+            row = maybe_row
         estimator = self._estimator
         established = estimator.effective_n >= self._min_samples
-        if self.learn.mode == "envelope" or self.learn.robust:
+        if learn.mode == "envelope" or learn.robust:
             weight = self._weight(target - estimator.predict(row))
         else:  # unit weight; refuse the rows `predict` would refuse, as it used to be asked
-            squared = phi_squared if row is phi else float(row.dot(row))
+            squared = phi_squared if row is phi else _ddot(row, row)
             if not math.isfinite(squared):
                 raise InputError(_NON_FINITE_ROW)
             weight = 1.0
-        innovation = estimator.update(row, target, weight, t)
+        z = estimator.update(row, target, weight, t).standardised
         self._squared.add(row, weight * weight, t)
         if not established:
             check_error = None  # an untrained model's error says nothing about the sensor
-        return True, check_error, _standardised(innovation)
+        return True, check_error, z if math.isfinite(z) else None
 
-    def _row(
+    def _reference_row(
         self, sample: Sample, phi: Array, psi: Array | None
     ) -> tuple[float, Array | None, float | None]:
-        mode = self.learn.mode
-        if mode != "reference":
-            return sample.value - self.learn.nominal, phi, None
+        """(target, row, check error) in learn mode `reference`; no row without a fresh
+        reference value. (In the other modes the target is raw − nominal, the row φ.)"""
         reference = self._inputs.lookup(self.learn.input, sample.time)
         if reference.value is None or not reference.fresh:
             return math.nan, None, None
@@ -595,7 +597,6 @@ class Channel:
     def _correct(
         self,
         sample: Sample,
-        *,
         baseline: float,
         corrected: float,
         uncertainty: float,
@@ -606,15 +607,18 @@ class Channel:
         learned: bool,
         theta: Array,
     ) -> Corrected:
-        """The published reading: quality flags, the cap, the QARTOD summary."""
-        flags = list(flags)  # the caller's list feeds model health, which ignores these
+        """The published reading: quality flags, the cap, the QARTOD summary.
+
+        The caller's `flags` feed model health, which must not see the flags added here:
+        they are added to a copy."""
         if not established:
-            flags.append(q.LEARNING)
+            flags = [*flags, q.LEARNING]
         elif self._condition_number() > self.config.ill_conditioned_above:
-            flags.append(q.ILL_CONDITIONED)  # while learning, too few samples is expected
+            flags = [*flags, q.ILL_CONDITIONED]  # while learning, too few samples is expected
         if self.config.cap is not None:
+            flags = list(flags)
             corrected = self._capped(sample.value, corrected, flags)
-        quality, code = q.summarise(flags)
+        quality, code = q.summarise(flags) if flags else (q.OK, q.QARTOD_PASS)
         # Positional, in the field order of `Corrected` (this runs once per reading).
         return Corrected(
             sample.time,
@@ -893,6 +897,8 @@ class _TemplateParts:
         )
         #: A never-fed estimator that channels copy (set by the first `Channel`).
         self.estimator: RecursiveEstimator | None = None
+        needed = config.basis.variables | (config.gain.variables if config.gain else frozenset())
+        self.needed = tuple(sorted(needed))  # the named inputs the bases read
         self.alerts = ChannelAlerts("", config.alerts, cap=config.cap)
         self._layout: list[tuple[str, int]] | None = None
         self._blank: Channel | None = None
@@ -1036,8 +1042,3 @@ def _conservative_rate(rate: float, spread: float) -> float:
     if not math.isfinite(spread):
         return 0.0
     return math.copysign(max(0.0, abs(rate) - RATE_Z * spread), rate)
-
-
-def _standardised(innovation: Any) -> float | None:
-    z = getattr(innovation, "standardised", None)
-    return float(z) if z is not None and math.isfinite(z) else None

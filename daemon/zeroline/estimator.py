@@ -132,12 +132,12 @@ _dtpqrt = lapack.dtpqrt
 _dtrtrs = lapack.dtrtrs
 # BLAS level 1 on the per-sample path: a third of the call cost of the numpy equivalents
 # at p ≤ 12, with the same bits. `ndarray.dot` of two float64 vectors is BLAS ddot (numpy
-# multiplies a one-element pair as scalars instead: see `_dot`); a scaling is one correctly
+# multiplies a one-element pair as scalars instead: see `dot`); a scaling is one correctly
 # rounded product per element however it is computed.
 _ddot, _dscal, _dcopy = blas.ddot, blas.dscal, blas.dcopy
 
 
-def _dot(x: FloatArray, y: FloatArray) -> float:
+def dot(x: FloatArray, y: FloatArray) -> float:
     """x·y with the bits of `float(x.dot(y))`: ddot, or the product of a one-element pair
     (numpy's scalar case; ddot would turn a −0.0 product into +0.0)."""
     if x.shape[0] == 1:
@@ -492,7 +492,7 @@ class RecursiveEstimator:
         theta = self._theta
         if theta is None:
             theta = self._solve()
-        prediction = _dot(x, theta)  # φᵀθ
+        prediction = dot(x, theta)  # φᵀθ
         sd = self._residual_sd(self._penalty)
         variance = sd * sd * (1.0 + baseline_variance)
         residual = y - prediction
