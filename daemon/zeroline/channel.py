@@ -169,7 +169,8 @@ class SquaredInformation:
         """vᵀ(S + prior_precision·I)v for v = `solved` (a channel's prior SD is one number
         for every term, so its information is a multiple of the identity)."""
         data = dot(_dsymv(1.0, self._matrix, solved), solved)
-        return data + prior_precision * _ddot(solved, solved)
+        squared: float = _ddot(solved, solved)
+        return data + prior_precision * squared
 
     def matrix(self) -> Array:
         """S in full (the upper triangle mirrored)."""
