@@ -9,6 +9,7 @@ the channel's own rounding (common practice, no source).
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 from fractions import Fraction
@@ -16,7 +17,7 @@ from fractions import Fraction
 import numpy as np
 import pytest
 
-from zeroline.channel import Channel, Sample, SquaredInformation
+from zeroline.channel import Channel, Corrected, Sample, SquaredInformation, _published
 from zeroline.config import parse_config
 
 DAY = 86400.0
@@ -141,3 +142,17 @@ def test_a_configured_epoch_reads_the_inputs_as_the_first_reading_epoch_does() -
         assert ours.coefficients is not None and theirs.coefficients is not None
         assert ours.coefficients.tobytes() == theirs.coefficients.tobytes()
         assert ours.to_json() == theirs.to_json()  # NaN (no σ̂ yet) is None there
+
+
+def test_the_fast_published_reading_equals_the_dataclass_constructor() -> None:
+    """`_published` fills a `Corrected` without its generated constructor: it must be the
+    very same value (every field, equality, the JSON payload) and stay frozen."""
+    values = (1.5e9, 2.0, 1.5, 0.5, 0.1, "ok", 1, ("capped",), None, -0.0, True, np.ones(3))
+    fast, slow = _published(*values), Corrected(*values)
+    names = [f.name for f in dataclasses.fields(Corrected)]
+    assert len(names) == len(values)
+    for name in names:
+        assert getattr(fast, name) is getattr(slow, name)
+    assert fast.to_json() == slow.to_json() and repr(fast) == repr(slow)
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        fast.raw = 3.0  # type: ignore[misc]

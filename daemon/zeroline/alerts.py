@@ -344,8 +344,12 @@ class TabularCusum:
     def update(self, z: float) -> bool:
         """Add one standardised value; True when either side exceeds h."""
         # Plain floats on the hot path; `cusum_step` is the same formula for arrays.
-        upper = self._upper = max(0.0, self._upper + z - self.k)
-        lower = self._lower = max(0.0, self._lower - z - self.k)
+        # max(0.0, x) spelt as a comparison (what the builtin returns, NaN included: 0.0),
+        # because calling the builtin costs more than the rest of this method.
+        upper = self._upper + z - self.k
+        lower = self._lower - z - self.k
+        upper = self._upper = upper if upper > 0.0 else 0.0
+        lower = self._lower = lower if lower > 0.0 else 0.0
         return upper > self.h or lower > self.h  # `signalling`, inlined
 
     @property

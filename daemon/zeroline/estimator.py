@@ -617,11 +617,11 @@ class RecursiveEstimator:
     def solution(self) -> tuple[FloatArray, float]:
         """(`coefficients`, `residual_sd`) in one call: what the channel reads after every
         update (θ is solved once per change of the factor either way)."""
-        theta, penalty = self._solved()
+        theta = self._theta  # `_solved`, inlined: this runs after every reading
+        if theta is None:
+            theta = self._solve()
         coefficients = theta.copy() if self.column_scale is None else theta / self._scale
-        if self._count <= self.n_terms:
-            return coefficients, math.nan
-        return coefficients, self._residual_sd(penalty)
+        return coefficients, self._residual_sd(self._penalty)
 
     @property
     def covariance(self) -> FloatArray:
@@ -682,11 +682,18 @@ class RecursiveEstimator:
     def _residual_sd(self, penalty: float) -> float:
         """σ̂ given the prior's penalty at θ: the data's part of ρ² = min objective."""
         p = self.n_terms
-        if self._count <= p:
+        count = self._count
+        if count <= p:
             return math.nan
         rho = self._g * self._f.item(p, p)  # a Python float: cheaper arithmetic, same bits
-        rss = rho * rho - self.prior_weight * penalty
-        return math.sqrt(max(rss, 0.0) / (self._count - p))
+        # `prior_weight`, inlined (this runs twice per sample): the same expression
+        weight, half_life = self._prior_ref_weight, self.half_life
+        now, reference = self._time, self._prior_ref_time
+        if half_life is not None and now is not None and reference is not None:
+            weight *= 2.0 ** (-(now - reference) / half_life)
+        rss = rho * rho - weight * penalty
+        # max(rss, 0.0) as a comparison (the builtin call costs more than the rest here)
+        return math.sqrt((0.0 if rss < 0.0 else rss) / (count - p))
 
     def condition_number(self) -> float:
         """2-norm condition number of R after scaling its columns to unit length.
