@@ -207,7 +207,9 @@ class SquaredInformation:
     def quadratic(self, solved: Array, prior_precision: float) -> float:
         """vᵀ(S + prior_precision·I)v for v = `solved` (a channel's prior SD is one number
         for every term, so its information is a multiple of the identity)."""
-        data = dot(_dsymv(1.0, self._matrix, solved), solved)
+        # ddot even for one term, where numpy's dot would give a −0.0 product as −0.0: the
+        # sum with the prior's part, a +0.0 at least, is the same either way.
+        data: float = _ddot(_dsymv(1.0, self._matrix, solved), solved)
         squared: float = _ddot(solved, solved)
         return data + prior_precision * squared
 
@@ -272,6 +274,8 @@ class Channel:
         self.name = name or config.name
         self.learn = config.learn
         self._offset_size = parts.offset_size
+        # φ·θ and the like with numpy's bits (`dot`); ddot directly where that is the same
+        self._offset_dot = _ddot if parts.offset_size > 1 else dot
         self._gain_size = parts.gain_size
         self._min_samples = config.learn.min_samples or 2 * self.n_terms
         if parts.estimator is None:  # the first channel of the template: the long way
@@ -394,7 +398,8 @@ class Channel:
         theta, sd = estimator.solution()
         gain_size = self._gain_size
         offset_theta = theta[gain_size:] if gain_size else theta
-        baseline = dot(phi, offset_theta)
+        offset_dot = self._offset_dot
+        baseline: float = offset_dot(phi, offset_theta)
         established = estimator.effective_n >= self._min_samples
         if psi is None:
             gain = None
@@ -412,7 +417,7 @@ class Channel:
             corrected,
             sd * math.sqrt(0.0 if sandwiched < 0.0 else sandwiched),  # max(·, 0.0), cheaper
             gain,
-            dot(np.array(here[1]), offset_theta),
+            offset_dot(np.array(here[1]), offset_theta),
             flags,
             established,
             learned,
@@ -433,7 +438,7 @@ class Channel:
             return result, events
         assert self._basis is not None
         held = self._basis.point_with(t, self._input_means, here)
-        drift = dot(np.array(held[0]), offset_theta)
+        drift: float = offset_dot(np.array(held[0]), offset_theta)
         self.last_drift = drift
         # The rate's uncertainty costs solves, the forecast a covariance read-out: only
         # for a rule that watches them.
@@ -469,7 +474,7 @@ class Channel:
         magnitude (`_conservative_rate`)."""
         full = np.array([0.0] * self._gain_size + slope)
         _, sandwiched = self._variances(full)
-        rate = dot(full[self._gain_size :], offset_theta)
+        rate: float = self._offset_dot(full[self._gain_size :], offset_theta)
         return _conservative_rate(rate, sd * math.sqrt(0.0 if sandwiched < 0.0 else sandwiched))
 
     def _read_fit(self) -> _Fit:

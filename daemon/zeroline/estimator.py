@@ -140,10 +140,10 @@ _ddot, _dscal, _dcopy = blas.ddot, blas.dscal, blas.dcopy
 def dot(x: FloatArray, y: FloatArray) -> float:
     """x·y with the bits of `float(x.dot(y))`: ddot, or the product of a one-element pair
     (numpy's scalar case; ddot would turn a −0.0 product into +0.0)."""
-    if x.shape[0] == 1:
-        return x.item(0) * y.item(0)
-    result: float = _ddot(x, y)
-    return result
+    if len(x) > 1:
+        result: float = _ddot(x, y)
+        return result
+    return x.item(0) * y.item(0)
 
 
 def _absorb(factor: FloatArray, rows: FloatArray) -> FloatArray:
@@ -703,12 +703,18 @@ class RecursiveEstimator:
         """
         p = self.n_terms
         r = self._factor[:p, :p]
-        norms = np.sqrt(np.sum(r * r, axis=0))
+        squares = r * r
+        norms = np.sqrt(squares.sum(axis=0))
         # np.linalg.cond's own 2-norm formula σ_max/σ_min (a singular R gives inf, 0/0 too),
-        # without its wrapper's general-case checks
-        singular = np.linalg.svd(r / norms, compute_uv=False)
-        with np.errstate(all="ignore"):
-            ratio = float(singular[0] / singular[-1])
+        # with the singular values from LAPACK dgesdd directly: the routine numpy's svd
+        # calls (the same values), without the wrappers, which cost twice the SVD itself
+        _, singular, _, info = lapack.dgesdd(r / norms, 0)
+        if info > 0:
+            raise np.linalg.LinAlgError("SVD did not converge")
+        largest, smallest = singular.item(0), singular.item(p - 1)
+        if smallest == 0.0:
+            return math.inf
+        ratio: float = largest / smallest
         return math.inf if math.isnan(ratio) else ratio
 
     def shift(self, term: int, delta: float) -> None:
