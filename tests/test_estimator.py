@@ -20,7 +20,14 @@ import pytest
 from statsmodels.regression.recursive_ls import RecursiveLS
 
 from zeroline.errors import InputError
-from zeroline.estimator import PRIOR_TOP_UP, RecursiveEstimator, replay_batch
+from zeroline.estimator import (
+    PRIOR_TOP_UP,
+    SEQUENTIAL_BELOW,
+    RecursiveEstimator,
+    dot,
+    replay_batch,
+    sequential_dot,
+)
 from zeroline.lsq import fit_least_squares
 
 MINUTE, HOUR, DAY = 60.0, 3600.0, 86400.0
@@ -549,3 +556,22 @@ def test_rezero_of_a_window_equals_learning_the_shifted_targets() -> None:
         shifted.update(phi, y + delta, 1.0, t)
         reference.update(phi, y + delta, 1.0, t)
     assert np.allclose(shifted.coefficients, reference.coefficients, rtol=1e-9, atol=1e-12)
+
+
+@pytest.mark.parametrize("n", range(1, SEQUENTIAL_BELOW + 4))
+def test_dot_and_the_sequential_sum_have_numpy_dots_bits(n: int) -> None:
+    """The per-sample path calls BLAS ddot (`dot`) and, below SEQUENTIAL_BELOW numbers, a
+    left-to-right Python sum (`sequential_dot`) where it used `ndarray.dot`: both must give
+    its bits, signed zeros included (numpy multiplies a one-element pair as scalars). The
+    sequential sum is the BLAS's own choice for short vectors, not a promise: this fails if
+    the BLAS under numpy sums them otherwise. At SEQUENTIAL_BELOW and more, only `dot`."""
+    rng = np.random.default_rng(n)
+    for _ in range(2000):
+        x = rng.standard_normal(n) * 10.0 ** rng.uniform(-30, 30, n)
+        y = rng.standard_normal(n) * 10.0 ** rng.uniform(-30, 30, n)
+        x[rng.random(n) < 0.15] = 0.0
+        y[rng.random(n) < 0.15] = -0.0
+        expected = float(x.dot(y)).hex()
+        assert dot(x, y).hex() == expected
+        if n < SEQUENTIAL_BELOW:
+            assert sequential_dot(x.tolist(), y.tolist()).hex() == expected

@@ -38,7 +38,14 @@ from zeroline.basis import Basis, Point
 from zeroline.channel_alerts import ChannelAlerts
 from zeroline.config import ChannelConfig
 from zeroline.errors import InputError
-from zeroline.estimator import RecursiveEstimator, dot, pack_estimators, unpack_estimators
+from zeroline.estimator import (
+    SEQUENTIAL_BELOW,
+    RecursiveEstimator,
+    dot,
+    pack_estimators,
+    sequential_dot,
+    unpack_estimators,
+)
 from zeroline.estimator import packed_layout as estimator_layout
 from zeroline.inputs import InputCache
 from zeroline.objects import shallow_copy
@@ -274,8 +281,10 @@ class Channel:
         self.name = name or config.name
         self.learn = config.learn
         self._offset_size = parts.offset_size
-        # φ·θ and the like with numpy's bits (`dot`); ddot directly where that is the same
+        # φ·θ and the like with numpy's bits (`dot`); ddot directly where that is the same,
+        # and the rows that are lists of floats by `sequential_dot` where that is
         self._offset_dot = _ddot if parts.offset_size > 1 else dot
+        self._offset_lists = parts.offset_size < SEQUENTIAL_BELOW
         self._gain_size = parts.gain_size
         self._min_samples = config.learn.min_samples or 2 * self.n_terms
         if parts.estimator is None:  # the first channel of the template: the long way
@@ -400,6 +409,8 @@ class Channel:
         offset_theta = theta[gain_size:] if gain_size else theta
         offset_dot = self._offset_dot
         baseline: float = offset_dot(phi, offset_theta)
+        # The slope and the row at the inputs' means are lists: dotted as they are
+        theta_list = offset_theta.tolist() if self._offset_lists else None
         established = estimator.effective_n >= self._min_samples
         if psi is None:
             gain = None
@@ -417,7 +428,9 @@ class Channel:
             corrected,
             sd * math.sqrt(0.0 if sandwiched < 0.0 else sandwiched),  # max(·, 0.0), cheaper
             gain,
-            offset_dot(np.array(here[1]), offset_theta),
+            offset_dot(np.array(here[1]), offset_theta)
+            if theta_list is None
+            else sequential_dot(here[1], theta_list),
             flags,
             established,
             learned,
@@ -438,7 +451,11 @@ class Channel:
             return result, events
         assert self._basis is not None
         held = self._basis.point_with(t, self._input_means, here)
-        drift: float = offset_dot(np.array(held[0]), offset_theta)
+        drift: float = (
+            offset_dot(np.array(held[0]), offset_theta)
+            if theta_list is None
+            else sequential_dot(held[0], theta_list)
+        )
         self.last_drift = drift
         # The rate's uncertainty costs solves, the forecast a covariance read-out: only
         # for a rule that watches them.

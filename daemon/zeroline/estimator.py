@@ -146,6 +146,24 @@ def dot(x: FloatArray, y: FloatArray) -> float:
     return x.item(0) * y.item(0)
 
 
+#: Below this many numbers OpenBLAS's ddot (so numpy's dot) adds the products left to
+#: right to 0.0 (its vector kernel takes blocks of 16), so a Python loop over floats gives
+#: the same bits without making arrays; `tests/test_estimator.py` checks it, as this is
+#: the BLAS's choice, not a promise.
+SEQUENTIAL_BELOW = 16
+
+
+def sequential_dot(x: Sequence[float], y: Sequence[float]) -> float:
+    """Σ xᵢ·yᵢ of Python floats, left to right: `dot`'s bits when len(x) < SEQUENTIAL_BELOW
+    (one element: the bare product, as numpy)."""
+    if len(x) == 1:
+        return x[0] * y[0]
+    total = 0.0
+    for a, b in zip(x, y, strict=True):
+        total += a * b
+    return total
+
+
 def _absorb(factor: FloatArray, rows: FloatArray) -> FloatArray:
     """Return R of QR([factor; rows]) for upper-triangular `factor`; `rows` is destroyed.
 
@@ -598,9 +616,17 @@ class RecursiveEstimator:
     def _solve(self) -> FloatArray:
         """Solve θ = R⁻¹z = G⁻¹z_G and the penalty into the cache; return θ."""
         theta: FloatArray = _dtrtrs(self._r, self._z)[0]
-        offset = theta - self._prior_center
-        offset *= self._prior_root
-        self._theta, self._penalty = theta, _ddot(offset, offset)
+        if self.n_terms < SEQUENTIAL_BELOW:  # the same bits without two numpy operations
+            penalty = 0.0
+            centers, roots = self._prior_center.tolist(), self._prior_root.tolist()
+            for value, center, root in zip(theta.tolist(), centers, roots, strict=True):
+                offset = (value - center) * root
+                penalty += offset * offset
+        else:
+            offsets = theta - self._prior_center
+            offsets *= self._prior_root
+            penalty = _ddot(offsets, offsets)
+        self._theta, self._penalty = theta, penalty
         return theta
 
     def _solution(self) -> FloatArray:
@@ -653,14 +679,17 @@ class RecursiveEstimator:
         its uncertainties after every reading.
         """
         x = phi if self.column_scale is None else phi / self._scale
+        p = self.n_terms
         a = _dtrtrs(self._r, x, 0, 1)[0]  # G⁻ᵀx = g·R⁻ᵀx (R = g·G, see `_factor`)
         g2 = self._g * self._g
-        solved: FloatArray = _dtrtrs(self._r, a, 0, 0)[0]  # G⁻¹G⁻ᵀx = g²·P·x
+        quadratic: float = _ddot(a, a) / g2
+        # In place: a (a new array) is not needed again; lda positional, as overwrite_b is
+        solved: FloatArray = _dtrtrs(self._r, a, 0, 0, 0, p + 1, 1)[0]  # G⁻¹G⁻ᵀx = g²·P·x
         if self.column_scale is not None:
             solved /= g2 * self._scale
         elif g2 != 1.0:  # the channel settles g into G after every reading
             solved /= g2
-        return _ddot(a, a) / g2, solved
+        return quadratic, solved
 
     def information_matrix(self) -> FloatArray:
         """info = RᵀR = Σ w·2^(−age/h)·φφᵀ + prior, in the user's units.
