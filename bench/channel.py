@@ -27,11 +27,11 @@ and memory traffic still is. Printed, best of the rounds and their median:
 3. the ratios channel / update and channel / textbook: the best of each side, and the
    median of the per-round ratios (a round sees about the same load on both sides).
 
-With `--against TREE` every round runs in fresh processes, one with this tree's `daemon/`
-and one with TREE's first on the path (the order alternating), and the two channels' µs
-per reading are printed side by side with the ratio of bests and the median of the
-per-round ratios: a before/after comparison under the same load. bench/RESULTS.md
-("Channel hot path") has this script's figures.
+With `--against TREE` the rounds alternate between two processes, one with this tree's
+`daemon/` and one with TREE's first on the path, and the two channels' µs per reading are
+printed side by side with the ratio of bests and the median of the per-round ratios: a
+before/after comparison under the same load. bench/RESULTS.md ("Channel hot path") has
+this script's figures.
 """
 
 from __future__ import annotations
@@ -170,8 +170,7 @@ def measure(args: argparse.Namespace, rounds: int) -> np.ndarray:
         lambda: time_updates(load),
         lambda: time_textbook(load),
     ]
-    if not args.child:
-        interleaved(1, sides)  # warm-up: imports, caches, allocator
+    interleaved(1, sides)  # warm-up: imports, caches, allocator
     table: np.ndarray = interleaved(rounds, sides) / (load.channels * load.timed) * 1e6
     if args.profile:
         profile = cProfile.Profile()
@@ -198,31 +197,63 @@ def report(micro: np.ndarray, args: argparse.Namespace) -> None:
         )
 
 
-def child_round(tree: Path, args: argparse.Namespace) -> list[float]:
-    """One round in a fresh process with `tree`'s code: µs per reading of each side."""
-    command = [sys.executable, __file__, "--child", "--rounds", "1"]
-    command += ["--channels", str(args.channels), "--warm-up", str(args.warm_up)]
-    command += ["--per-channel", str(args.per_channel)]
-    env = {**os.environ, "ZEROLINE_BENCH_TREE": str(tree)}
-    output = subprocess.run(command, env=env, check=True, capture_output=True, text=True).stdout
-    values: list[float] = json.loads(output.strip().splitlines()[-1])
-    return values
+def serve(args: argparse.Namespace) -> None:
+    """A child of --against: one round per line read from stdin, µs per reading of each
+    side as a JSON line (the workload is made once)."""
+    config = parse_config(CONFIG).channels[0]
+    load = workload(config, args.channels, args.warm_up, args.per_channel)
+    sides: list[Callable[[], float]] = [
+        lambda: time_channels(config, load),
+        lambda: time_updates(load),
+        lambda: time_textbook(load),
+    ]
+    for _ in sys.stdin:
+        micro = interleaved(1, sides)[0] / (load.channels * load.timed) * 1e6
+        print(json.dumps(micro.tolist()), flush=True)
 
 
 def against(other: Path, args: argparse.Namespace) -> None:
-    """This tree against `other`, each round a fresh process per tree, order alternating."""
+    """This tree against `other`: a process per tree, kept for every round (each round
+    makes its channels anew), the order alternating; one untimed round each first."""
     here = Path(__file__).resolve().parent.parent
     trees = [("this tree", here), (f"{other}", other)]
+    command = [sys.executable, __file__, "--serve", "--channels", str(args.channels)]
+    command += ["--warm-up", str(args.warm_up), "--per-channel", str(args.per_channel)]
+    children = [
+        subprocess.Popen(
+            command,
+            env={**os.environ, "ZEROLINE_BENCH_TREE": str(tree)},
+            stdin=subprocess.PIPE,
+            stdout=subprocess.PIPE,
+            text=True,
+        )
+        for _, tree in trees
+    ]
+
+    def round_of(child: subprocess.Popen[str]) -> list[float]:
+        assert child.stdin is not None and child.stdout is not None
+        child.stdin.write("round\n")
+        child.stdin.flush()
+        values: list[float] = json.loads(child.stdout.readline())
+        return values
+
     table = np.empty((args.rounds, 2, len(SIDES)))
-    for r in range(args.rounds):
-        order = (0, 1) if r % 2 == 0 else (1, 0)
-        for index in order:
-            table[r, index] = child_round(trees[index][1], args)
+    try:
+        for child in children:
+            round_of(child)  # warm-up: imports, caches, allocator
+        for r in range(args.rounds):
+            for index in (0, 1) if r % 2 == 0 else (1, 0):
+                table[r, index] = round_of(children[index])
+    finally:
+        for child in children:
+            assert child.stdin is not None
+            child.stdin.close()
+            child.wait(60)
     print(f"machine: {machine()}, OPENBLAS_NUM_THREADS={os.environ['OPENBLAS_NUM_THREADS']}")
     print(
         f"{args.channels * args.per_channel} timed readings over {args.channels} channels "
-        f"(after {args.warm_up} warm-up readings each), {args.rounds} rounds, a fresh "
-        "process per round and tree"
+        f"(after {args.warm_up} warm-up readings each), {args.rounds} rounds alternating "
+        "between two processes"
     )
     print(f"  {'µs/reading, best / median':33} {'process':>15} {'update':>13} {'textbook':>13}")
     for index, (name, _) in enumerate(trees):
@@ -248,18 +279,17 @@ def main() -> None:
     parser.add_argument("--rounds", type=int, default=7)
     parser.add_argument("--profile", action="store_true", help="cProfile one channel round")
     parser.add_argument("--against", type=Path, metavar="TREE", help="another checkout to compare")
-    parser.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
+    parser.add_argument("--serve", action="store_true", help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.quick:
         args.channels, args.rounds = 100, 3
     if args.against is not None:
         against(args.against.resolve(), args)
         return
-    micro = measure(args, args.rounds)
-    if args.child:
-        print(json.dumps(micro[0].tolist()))
+    if args.serve:
+        serve(args)
         return
-    report(micro, args)
+    report(measure(args, args.rounds), args)
 
 
 if __name__ == "__main__":
