@@ -134,7 +134,6 @@ class AlertBook:
     def observe(
         self,
         time: float,
-        *,
         drift: float | None = None,
         rate_per_s: float | None = None,
         forecast: Predictor | None = None,
@@ -143,7 +142,8 @@ class AlertBook:
         correction: float | None = None,
         problems: Iterable[str] | None = None,
     ) -> list[AlertEvent]:
-        """Feed what is known at `time`; the raise and clear events it causes."""
+        """Feed what is known at `time`; the raise and clear events it causes. (The
+        channel passes every number by position, in this order, once per reading.)"""
         events: list[AlertEvent] = []
         if drift is not None and self._drift is not None:
             events += self._drift.observe(time, drift)

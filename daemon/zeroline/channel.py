@@ -209,7 +209,7 @@ class SquaredInformation:
         if self.half_life is not None and self._time is not None:
             _dscal(4.0 ** (-(time - self._time) / self.half_life), self._matrix.ravel("K"))
         self._time = time
-        self._matrix = _dsyr(weight_squared, row, 0, 1, 0, row.shape[0], self._matrix, 1)
+        self._matrix = _dsyr(weight_squared, row, 0, 1, 0, len(row), self._matrix, 1)
 
     def quadratic(self, solved: Array, prior_precision: float) -> float:
         """vᵀ(S + prior_precision·I)v for v = `solved` (a channel's prior SD is one number
@@ -379,7 +379,7 @@ class Channel:
         psi = self._gain.row(t, covariates) if self._gain else None
         if self._last_useful > -math.inf and time - self._last_useful > self.learn.max_gap:
             flags.append(q.EXTRAPOLATING)  # judged before this sample teaches anything
-        learned, check_error, z = self._learn(sample, t, phi, psi, phi_squared, stale=stale)
+        learned, check_error, z = self._learn(sample, t, phi, psi, phi_squared, stale)
         if learned:
             self._last_useful = time
         self._track_means(time, covariates)
@@ -439,16 +439,7 @@ class Channel:
         health = self._health(flags, phi_squared, psi, row_variance, established)
         alerts = self.alerts
         if not established:  # an untrained model's drift and residuals say nothing
-            events = alerts.observe(
-                result,
-                drift=None,
-                rate=None,
-                z=None,
-                check_error=None,
-                forecast=None,
-                health=health,
-            )
-            return result, events
+            return result, alerts.observe(result, None, None, None, None, None, health)
         assert self._basis is not None
         held = self._basis.point_with(t, self._input_means, here)
         drift: float = (
@@ -460,18 +451,9 @@ class Channel:
         # The rate's uncertainty costs solves, the forecast a covariance read-out: only
         # for a rule that watches them.
         watched = alerts.book.rules
-        events = alerts.observe(
-            result,
-            drift=drift,
-            rate=self._rate_at_means(held[1], offset_theta, sd)
-            if "rate_limit" in watched
-            else None,
-            z=z,
-            check_error=check_error,
-            forecast=self._forecaster() if "forecast" in watched else None,
-            health=health,
-        )
-        return result, events
+        rate = self._rate_at_means(held[1], offset_theta, sd) if "rate_limit" in watched else None
+        forecast = self._forecaster() if "forecast" in watched else None
+        return result, alerts.observe(result, drift, rate, z, check_error, forecast, health)
 
     def _variances(self, gradient: Array) -> tuple[float, float]:
         """(gᵀPg, gᵀ·P(FᵀW²F + prior)P·g), both over σ̂² (see `_Fit`), without forming P.
@@ -569,7 +551,6 @@ class Channel:
         phi: Array,
         psi: Array | None,
         phi_squared: float,
-        *,
         stale: bool,
     ) -> tuple[bool, float | None, float | None]:
         """Update the estimator if this sample teaches the baseline.
@@ -741,12 +722,13 @@ class Channel:
         if self._means_time is not None:
             weight = 1.0 - math.exp(-(time - self._means_time) / INPUT_MEAN_TAU)
         self._means_time = time
+        stage1, means = self._input_stage1, self._input_means
         for name, value in covariates.items():
-            first = self._input_stage1.get(name, value)
+            first = stage1.get(name, value)
             first += weight * (value - first)
-            self._input_stage1[name] = first
-            previous = self._input_means.get(name, value)
-            self._input_means[name] = previous + weight * (first - previous)
+            stage1[name] = first
+            previous = means.get(name, value)
+            means[name] = previous + weight * (first - previous)
 
     def _forecaster(self) -> Callable[[Array], tuple[Array, Array]]:
         """Predicted drift and its SD at future (absolute) times, inputs at their means.

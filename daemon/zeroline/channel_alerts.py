@@ -135,7 +135,6 @@ class ChannelAlerts:
     def observe(
         self,
         result: Any,
-        *,
         drift: float | None,
         rate: float | None,
         z: float | None,
@@ -143,19 +142,18 @@ class ChannelAlerts:
         forecast: Forecaster | None,
         health: list[str],
     ) -> list[AlertEvent]:
-        """Events caused by one corrected reading (`zeroline.channel.Corrected`)."""
-        correction = None
-        if result.corrected is not None:
-            correction = result.raw - result.corrected
+        """Events caused by one corrected reading (`zeroline.channel.Corrected`); the
+        channel passes the arguments by position (once per reading: keywords cost more)."""
+        corrected = result.corrected
         return self.book.observe(
             result.time,
-            drift=drift,
-            rate_per_s=rate,
-            forecast=forecast,
-            residual_z=z,
-            check_error=abs(check_error) if check_error is not None else None,
-            correction=correction,
-            problems=health,
+            drift,
+            rate,
+            forecast,
+            z,
+            abs(check_error) if check_error is not None else None,
+            None if corrected is None else result.raw - corrected,
+            health,
         )
 
     def on_missing(self, time: float, problems: list[str]) -> list[AlertEvent]:

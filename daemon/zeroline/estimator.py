@@ -135,6 +135,7 @@ _dtrtrs = lapack.dtrtrs
 # multiplies a one-element pair as scalars instead: see `dot`); a scaling is one correctly
 # rounded product per element however it is computed.
 _ddot, _dscal, _dcopy = blas.ddot, blas.dscal, blas.dcopy
+_new_tuple = tuple.__new__
 
 
 def dot(x: FloatArray, y: FloatArray) -> float:
@@ -356,7 +357,9 @@ class RecursiveEstimator:
         after every update (the channel does) continues bit for bit the same after a
         snapshot round trip. Costs one pass over the (p+1)² factor.
         """
-        self._settle()
+        if self._g != 1.0:  # `_settle`, inlined: the channel calls this after every reading
+            _dscal(self._g, self._f.ravel("F"))  # G is Fortran-ordered: a view, in place
+            self._g, self._g_time = 1.0, self._time
 
     def _settle(self) -> None:
         """Multiply the pending forgetting g into G, so that G = F."""
@@ -515,7 +518,10 @@ class RecursiveEstimator:
         variance = sd * sd * (1.0 + baseline_variance)
         residual = y - prediction
         standardised = residual / math.sqrt(variance) if variance > 0 else math.nan
-        return Innovation(prediction, residual, baseline_variance, variance, standardised)
+        # The named tuple made without its generated __new__ (a Python-level call)
+        return _new_tuple(
+            Innovation, (prediction, residual, baseline_variance, variance, standardised)
+        )
 
     def _learn(self, x: FloatArray, y: float, weight: float) -> None:
         p = self.n_terms
