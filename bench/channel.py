@@ -161,8 +161,8 @@ def interleaved(rounds: int, sides: list[Callable[[], float]]) -> np.ndarray:
     return table
 
 
-def measure(args: argparse.Namespace, rounds: int) -> np.ndarray:
-    """µs per timed reading of each of `SIDES` in each round, shape (rounds, 3)."""
+def _sides(args: argparse.Namespace) -> tuple[ChannelConfig, Workload, list[Callable[[], float]]]:
+    """The channel config, its workload and one timing function per side of `SIDES`."""
     config = parse_config(CONFIG).channels[0]
     load = workload(config, args.channels, args.warm_up, args.per_channel)
     sides: list[Callable[[], float]] = [
@@ -170,6 +170,12 @@ def measure(args: argparse.Namespace, rounds: int) -> np.ndarray:
         lambda: time_updates(load),
         lambda: time_textbook(load),
     ]
+    return config, load, sides
+
+
+def measure(args: argparse.Namespace, rounds: int) -> np.ndarray:
+    """µs per timed reading of each of `SIDES` in each round, shape (rounds, 3)."""
+    config, load, sides = _sides(args)
     interleaved(1, sides)  # warm-up: imports, caches, allocator
     table: np.ndarray = interleaved(rounds, sides) / (load.channels * load.timed) * 1e6
     if args.profile:
@@ -200,13 +206,7 @@ def report(micro: np.ndarray, args: argparse.Namespace) -> None:
 def serve(args: argparse.Namespace) -> None:
     """A child of --against: one round per line read from stdin, µs per reading of each
     side as a JSON line (the workload is made once)."""
-    config = parse_config(CONFIG).channels[0]
-    load = workload(config, args.channels, args.warm_up, args.per_channel)
-    sides: list[Callable[[], float]] = [
-        lambda: time_channels(config, load),
-        lambda: time_updates(load),
-        lambda: time_textbook(load),
-    ]
+    _, load, sides = _sides(args)
     for _ in sys.stdin:
         micro = interleaved(1, sides)[0] / (load.channels * load.timed) * 1e6
         print(json.dumps(micro.tolist()), flush=True)
