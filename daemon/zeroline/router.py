@@ -52,6 +52,8 @@ _log = logging.getLogger(__name__)
 
 PLACEHOLDER = re.compile(r"\{(\d+)\}")
 INPUTS_PER_CHANNEL_BOUND = 4  # latest input values kept: this many per allowed channel
+#: What unpacking a saved row can raise when the row is not a state of the config's model.
+_UNREADABLE = (KeyError, TypeError, ValueError, IndexError, InputError)
 MATCHES_REMEMBERED_PER_CHANNEL = 2  # topics whose matches are remembered, per allowed channel
 
 
@@ -280,16 +282,12 @@ class ChannelTable:
         channel = self.channels.get(name)
         if channel is not None:
             return channel
-        parked = self.parked.get(name)
-        origin = self.origin.get(name)
-        if parked is None or origin is None:
+        if name not in self.parked:
             return None
-        packed, row = parked
         try:
-            [copy] = unpack_channels(self.routes.templates[origin[0]], [name], packed.take([row]))
-        except (KeyError, TypeError, ValueError, IndexError, InputError):
+            return self._unpacked(name)
+        except _UNREADABLE:
             return None  # the worker logs it and counts it when the channel is used
-        return copy
 
     def create(
         self, template: str, wildcards: tuple[str, ...], name: str | None = None
@@ -344,18 +342,23 @@ class ChannelTable:
             for packed, names, rows in blocks.values()
         ]
 
-    def _unpark(self, name: str) -> Channel:
+    def _unpacked(self, name: str) -> Channel:
+        """A parked channel unpacked from its row (it stays parked); _UNREADABLE if not."""
         packed, row = self.parked[name]
-        template, wildcards = self.origin[name]
-        config = self.routes.templates[template]
+        config = self.routes.templates[self.origin[name][0]]
+        [channel] = unpack_channels(config, [name], packed.take([row]))
+        return channel
+
+    def _unpark(self, name: str) -> Channel:
+        wildcards = self.origin[name][1]
         try:
-            [channel] = unpack_channels(config, [name], packed.take([row]))
-        except (KeyError, TypeError, ValueError, IndexError, InputError) as error:
+            channel = self._unpacked(name)
+        except _UNREADABLE as error:
             self.unpark_failures += 1
             _log.warning(
                 "channel %r: its saved state cannot be read (%s); it starts fresh", name, error
             )
-            channel = Channel(config, name)
+            channel = Channel(self.routes.templates[self.origin[name][0]], name)
         # In use first, then no longer parked: `names` (read from the status page's thread,
         # parked first) then never misses the channel.
         self.channels[name] = channel
