@@ -282,7 +282,8 @@ class Channel:
         self.learn = config.learn
         self._offset_size = parts.offset_size
         # φ·θ and the like with numpy's bits (`dot`); ddot directly where that is the same,
-        # and the rows that are lists of floats by `sequential_dot` where that is
+        # and short rows that are lists of floats by `sequential_dot` (no arrays made; the
+        # same bits as ddot on the OpenBLAS kernels seen here, which nothing relies on)
         self._offset_dot = _ddot if parts.offset_size > 1 else dot
         self._offset_lists = parts.offset_size < SEQUENTIAL_BELOW
         self._gain_size = parts.gain_size
