@@ -444,8 +444,8 @@ class _Server(ThreadingHTTPServer):
 
     def process_request(self, request: Any, client_address: Any) -> None:
         if not self._slots.acquire(blocking=False):
+            self.counter.count(503)  # before the answer goes out, as in `_send`
             _refuse_busy(request)
-            self.counter.count(503)
             self.shutdown_request(request)
             return
         try:
@@ -547,6 +547,10 @@ class _Handler(BaseHTTPRequestHandler):
         self._send(Response.error(int(code), message or HTTPStatus(code).phrase))
 
     def _send(self, response: Response) -> None:
+        # Counted before the first byte goes out: a client that has read this
+        # answer and asks /metrics at once must find it counted (the handler
+        # thread may not run again before the next request is served).
+        self.server.counter.count(response.status)
         self.send_response(response.status)
         for name, value in (*SECURITY_HEADERS, *response.headers):
             self.send_header(name, value)
@@ -556,7 +560,6 @@ class _Handler(BaseHTTPRequestHandler):
         self.end_headers()
         if self.command != "HEAD":
             self.wfile.write(response.body)
-        self.server.counter.count(response.status)
 
     def _drain(self) -> None:
         """Read and drop what the client is still sending, so it sees our answer."""
