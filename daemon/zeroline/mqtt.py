@@ -505,10 +505,14 @@ class _Connection:
                 data = sock.recv(READ_BYTES)
                 if not data:
                     raise ConnectionError("the broker closed the connection")
-                if QUICKACK is not None and self.subscriber:
-                    # Acknowledge at the TCP level now, not after the delayed-ACK timer:
-                    # our PUBACKs wait for the journal, and a broker with Nagle on (Mosquitto's
-                    # default) holds its next small PUBLISH until the last one is acknowledged.
+                if QUICKACK is not None:
+                    # Acknowledge at the TCP level now, not after the delayed-ACK timer (40
+                    # ms): a broker with Nagle on (Mosquitto's default) holds its next small
+                    # packet until the last one is acknowledged. On the input connection our
+                    # PUBACKs wait for the journal, so nothing carries the ACK back; on the
+                    # output connection the last PUBACK of a burst waited 40 ms, and with it
+                    # every snapshot (it needs all outputs confirmed). Linux clears the flag
+                    # after a while, hence once per read.
                     sock.setsockopt(socket.IPPROTO_TCP, QUICKACK, 1)
                 last_heard = now
                 for packet in reader.feed(data):
