@@ -234,6 +234,31 @@ def test_names_and_messages_are_shown_as_text_not_markup(
     assert next(dom.find_all("title")).text() == "zeroline · gateway status"
 
 
+def test_a_channel_without_a_kept_history_says_so_instead_of_waiting(
+    chromium: Chromium,
+) -> None:
+    """Past the board's cap a channel has no chart: its card says that, not "waiting"."""
+    source = FakeSource(
+        statuses={
+            "charted": make_status("charted"),
+            "uncharted": make_status("uncharted", recent=(), recent_kept=False),
+            "new": make_status("new", recent=()),
+        }
+    )
+    handle = start_http_server(source, "127.0.0.1:0")
+    try:
+        dom = chromium.dom(handle.url + "/")
+    finally:
+        handle.stop()
+    labels = {
+        name: next(card.find_all("svg")).attrs["aria-label"] for name, card in cards(dom).items()
+    }
+    assert labels["uncharted"] == "uncharted: no chart kept"
+    assert "no chart kept" in " ".join(cards(dom)["uncharted"].text().split())
+    assert labels["new"] == "new: no readings yet"
+    assert "no chart" not in labels["charted"]
+
+
 def test_a_token_protected_gateway_asks_for_the_token(chromium: Chromium, tmp_path: Path) -> None:
     """Opened without a token, the page shows the token field and says why, and no data."""
     token_file = tmp_path / "token"

@@ -27,9 +27,10 @@ from zeroline.alerts import AlertEvent
 from zeroline.channel import Channel, Corrected
 from zeroline.config import Config
 from zeroline.metrics import channel_gauges
-from zeroline.status import ChannelStatus, History, Metric, channel_status
+from zeroline.status import HISTORY_CHANNELS, ChannelStatus, History, Metric, channel_status
 
 HEALTH_EVERY_S = 10.0
+PRUNE_EVERY_S = 60.0
 
 
 def timeseries_config(config: Config) -> tsdb.TimeseriesConfig | None:
@@ -130,8 +131,10 @@ class StatusBoard:
         counters: Callable[[], Mapping[str, int]],
         ready: Callable[[], bool],
         extra: Callable[[], Mapping[str, float]] = dict,
+        history_channels: int = HISTORY_CHANNELS,
     ) -> None:
         self._names = names
+        self._history_channels = history_channels
         self._lookup = lookup
         self._counters = counters
         self._ready = ready
@@ -139,6 +142,7 @@ class StatusBoard:
         self._lock = threading.Lock()
         self._last: dict[str, Corrected] = {}
         self._history: dict[str, History] = {}
+        self._last_prune = -math.inf
         self._started = time.time()
 
     # --- OutputSink ---------------------------------------------------------------------
@@ -148,8 +152,24 @@ class StatusBoard:
             self._last[channel.name] = result
             history = self._history.get(channel.name)
             if history is None:  # not setdefault: that would build a History every call
+                if len(self._history) >= self._history_channels and not self._pruned():
+                    return  # no chart for this one (see zeroline.status)
                 history = self._history[channel.name] = History()
             history.add(result)
+
+    def _pruned(self) -> bool:
+        """Drop the rings of channels that no longer exist (a reload removed them); True if
+        that made room. At most once a minute: the full list of names costs a pass over
+        every channel, and past the cap this is asked on every reading of an unkept one."""
+        now = time.monotonic()
+        if now - self._last_prune < PRUNE_EVERY_S:
+            return False
+        self._last_prune = now
+        existing = set(self._names())
+        for name in [n for n in self._history if n not in existing]:
+            del self._history[name]
+            self._last.pop(name, None)
+        return len(self._history) < self._history_channels
 
     def alert(self, channel: Channel, event: AlertEvent) -> None:
         """Alert state is read from the channel itself (`alerts.active()`)."""
@@ -180,7 +200,8 @@ class StatusBoard:
         with self._lock:
             last = self._last.get(name)
             history = self._history.get(name)
-            return channel_status(channel, last, history)
+            kept = history is not None or len(self._history) < self._history_channels
+            return channel_status(channel, last, history, kept=kept)
 
     def metrics(self) -> Sequence[Metric]:
         found: list[Metric] = []

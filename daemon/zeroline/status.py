@@ -4,8 +4,11 @@ The HTTP layer never touches a `Channel` directly; the daemon implements `Status
 and the HTTP layer asks it for plain data (`ChannelStatus`, counters). That keeps the
 network thread away from the model and lets the HTTP tests use a fake source.
 
-Recent samples are kept per channel in a small ring (`History`) of numbers only, so a
-gateway with thousands of channels pays a fixed, small amount of memory for the page.
+Recent samples are kept per channel in a small ring (`History`) of numbers only, and only
+for the first `HISTORY_CHANNELS` channels: a ring is 4.8 KB, a third of all the memory a
+channel costs, and a page of more charts than that is not something anyone reads (a large
+site's history is in the time-series database and its dashboard). The other channels show
+their current values and say that no chart is kept (`recent_kept: false`).
 """
 
 from __future__ import annotations
@@ -23,6 +26,7 @@ from zeroline.channel import Channel, Corrected
 
 Array = npt.NDArray[np.float64]
 HISTORY_LENGTH = 120
+HISTORY_CHANNELS = 200  # channels with a chart on the status page: at most ~1 MB of rings
 HISTORY_FIELDS = ("time", "raw", "corrected", "baseline", "uncertainty")
 _WIDTH = len(HISTORY_FIELDS)
 
@@ -97,6 +101,7 @@ class ChannelStatus:
     rate_limit: float | None
     active_alerts: tuple[Mapping[str, Any], ...]
     recent: tuple[Mapping[str, float | None], ...] = field(default=())
+    recent_kept: bool = True  # False: beyond HISTORY_CHANNELS, no chart is kept
 
     def to_json(self, *, with_recent: bool = True) -> dict[str, Any]:
         data: dict[str, Any] = {
@@ -122,6 +127,7 @@ class ChannelStatus:
         }
         if with_recent:
             data["recent"] = [dict(r) for r in self.recent]
+            data["recent_kept"] = self.recent_kept
         return data
 
 
@@ -130,9 +136,10 @@ def _finite(value: float | None) -> float | None:
 
 
 def channel_status(
-    channel: Channel, last: Corrected | None, history: History | None
+    channel: Channel, last: Corrected | None, history: History | None, *, kept: bool = True
 ) -> ChannelStatus:
-    """Build the view of one channel from its model, its last result and its history."""
+    """Build the view of one channel from its model, its last result and its history
+    (`kept` False: the channel has no history because the board keeps no more rings)."""
     config = channel.config
     gain_names = tuple(f"gain:{n}" for n in config.gain.names) if config.gain else ()
     names = gain_names + config.basis.names
@@ -160,6 +167,7 @@ def channel_status(
         rate_limit=config.alerts.rate_limit,
         active_alerts=tuple(e.to_json() for e in channel.alerts.active().values()),
         recent=tuple(history.as_dicts()) if history else (),
+        recent_kept=kept,
     )
 
 
