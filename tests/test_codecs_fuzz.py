@@ -324,3 +324,43 @@ class TestRoundTrips:
         assert [(r.name, r.time, r.value) for r in expected] == [
             (prefix + name, float(start + t), float(v)) for name, t, v in records
         ]
+
+
+# --- the fast parser against the json module ---------------------------------------------
+
+json_values = st.recursive(
+    st.none()
+    | st.booleans()
+    | st.floats(allow_nan=False, allow_infinity=False)
+    | st.integers(-(2**63), 2**63 - 1)
+    | st.text(),
+    lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(), inner, max_size=4),
+    max_leaves=12,
+)
+number_texts = st.from_regex(
+    r"-?(0|[1-9][0-9]{0,24})(\.[0-9]{1,25})?([eE][-+]?[0-9]{1,3})?", fullmatch=True
+)
+
+
+@FUZZ
+@given(value=json_values)
+def test_fast_parse_equals_json_module_on_documents(value: Any) -> None:
+    """orjson (the fast path of `_parse_json`) and the json module (the reference, and the
+    fallback) read the same document from the same text, number types included."""
+    from zeroline.codecs import _parse_json
+
+    text = json.dumps(value)
+    assert repr(_parse_json(text.encode(), 10**6)) == repr(json.loads(text))
+
+
+@FUZZ
+@given(number=number_texts)
+def test_fast_parse_equals_json_module_on_numbers(number: str) -> None:
+    """Every JSON number text: the same float or int, or, beyond a double, the same error
+    path (orjson refuses it, the json module reads inf and the decoder calls it non-finite)."""
+    from zeroline.codecs import _parse_json
+
+    expected = json.loads(number)
+    if isinstance(expected, int) and not -(2**63) <= expected < 2**64:
+        expected = float(expected)  # documented: beyond 64 bits orjson gives a float
+    assert repr(_parse_json(number.encode(), 10**6)) == repr(expected)

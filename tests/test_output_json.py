@@ -1,4 +1,5 @@
-"""The fast corrected payload equals the json module's encoding of `Corrected.to_json`."""
+"""The fast corrected payload is the document `Corrected.to_json` describes, in strict JSON
+(the json module as the reference decoder)."""
 
 from __future__ import annotations
 
@@ -44,8 +45,33 @@ def test_same_bytes_as_json_dumps(
     result = Corrected(
         time, raw, corrected, baseline, uncertainty, quality, code, tuple(flags), gain, rate, True
     )
-    expected = json.dumps(result.to_json(), allow_nan=False).encode()
-    assert corrected_payload(result) == expected
+    document = strict_loads(corrected_payload(result))
+    expected = result.to_json()
+    assert list(document) == list(expected)  # the same fields in the same order
+    # repr, not ==: -0.0 must stay -0.0, and 1 must not become 1.0
+    assert {k: repr(v) for k, v in document.items()} == {k: repr(v) for k, v in expected.items()}
+
+
+def strict_loads(payload: bytes) -> dict[str, object]:
+    """json.loads that refuses NaN and Infinity, which are not JSON."""
+
+    def refuse(token: str) -> None:
+        raise AssertionError(f"{token} in the payload")
+
+    document = json.loads(payload, parse_constant=refuse)
+    assert isinstance(document, dict)
+    return document
+
+
+def test_compact_utf8() -> None:
+    result = Corrected(1.0, 2.0, 0.5, 1.5, 0.1, "ok ü", 1, (q.LEARNING,), None, 1e-9, True)
+    assert (
+        corrected_payload(result)
+        == (
+            '{"time":1.0,"raw":2.0,"corrected":0.5,"baseline":1.5,"uncertainty":0.1,'
+            '"quality":"ok ü","quality_code":1,"flags":["learning"],"gain":null,"drift_rate":1e-9}'
+        ).encode()
+    )
 
 
 def test_numpy_scalars_are_plain_numbers() -> None:
@@ -64,5 +90,6 @@ def test_numpy_scalars_are_plain_numbers() -> None:
         np.float64(1e-9),
         True,
     )
-    assert json.loads(corrected_payload(result))["baseline"] == 1.5
-    assert json.loads(corrected_payload(result))["uncertainty"] is None
+    document = strict_loads(corrected_payload(result))
+    assert document["corrected"] == 0.5 and document["baseline"] == 1.5
+    assert document["uncertainty"] is None

@@ -78,6 +78,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import orjson
 
 from zeroline.errors import InputError
 from zeroline.state_layout import PackedChannels, collector_paused
@@ -91,7 +92,6 @@ SNAPSHOT_NAME = "snapshot.bin"
 LEGACY_SNAPSHOT_NAME = "snapshot.json"
 LEGACY_SNAPSHOT_VERSION = 1
 JOURNAL_NAME = "journal.jsonl"
-_JOURNAL_ENCODER = json.JSONEncoder(separators=(",", ":"))  # one, not one per record
 MAGIC = b"zeroline-snapshot\n"
 _PREFIX = struct.Struct("<IIQQ")  # version, CRC-32 of the rest, header bytes, payload bytes
 _FLOAT = np.dtype("<f8")
@@ -226,11 +226,14 @@ class StateStore:
         """Append records and fsync: when this returns they survive a power cut."""
         if not records:
             return
-        encode = _JOURNAL_ENCODER.encode
-        data = "".join(encode(record) + "\n" for record in records)
+        # orjson: 0.6 against 6.6 µs a record for the json module, once per reading. It
+        # writes a NaN as null, which would not read back as a number: records hold only
+        # numbers the decoders and the control parser have checked to be finite.
+        dumps, newline = orjson.dumps, orjson.OPT_APPEND_NEWLINE
+        data = b"".join([dumps(record, option=newline) for record in records])
         start = self._journal.seek(0, os.SEEK_END)
         try:
-            view = memoryview(data.encode())
+            view = memoryview(data)
             while view:  # unbuffered: a raw write may be partial
                 written = self._journal.write(view) or 0
                 view = view[written:]
