@@ -19,8 +19,12 @@ _OPTIONS = orjson.OPT_SERIALIZE_NUMPY  # a numpy float64 is a number, not an err
 
 def corrected_payload(result: Corrected) -> bytes:
     """`result.to_json()` encoded, fast (the dict is built here, without `_finite`: a
-    non-finite float becomes null in the encoder)."""
-    return orjson.dumps(
+    non-finite float becomes null in the encoder).
+
+    Copied to a bytes object of its own size: orjson's result keeps the whole buffer it
+    was written in (~4 KB of resident memory), and the service keeps every channel's last
+    payload (40 MB at 10,000 channels, measured with bench/memory.py; the copy, 0.4 µs)."""
+    encoded = orjson.dumps(
         {
             "time": result.time,
             "raw": result.raw,
@@ -35,3 +39,4 @@ def corrected_payload(result: Corrected) -> bytes:
         },
         option=_OPTIONS,
     )
+    return memoryview(encoded).tobytes()
