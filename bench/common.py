@@ -158,7 +158,7 @@ class Counter:
         self.arrivals: dict[tuple[str, float], float] = {}
         self.last_arrival = 0.0
         self.payloads: dict[str, Any] = {}
-        self._lock = threading.Lock()
+        self.lock = threading.Lock()
         self._subscribed = threading.Event()
         persistent = client_id is not None
         self.client = mqtt.Client(
@@ -182,7 +182,7 @@ class Counter:
 
     def _on_message(self, client: mqtt.Client, userdata: Any, message: mqtt.MQTTMessage) -> None:
         now = time.perf_counter()
-        with self._lock:
+        with self.lock:
             self.count += 1
             self.last_arrival = now
             if message.retain:
