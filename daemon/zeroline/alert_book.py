@@ -200,9 +200,10 @@ class AlertBook:
     def active_json(self) -> dict[str, Any] | None:
         """The active events as JSON (they hold free text), or None when all are clear."""
         rules = self.rules
-        if not any(rule.active for rule in rules.values()):  # most channels, most of the time
-            return None
-        return {name: r.active.to_json() for name, r in rules.items() if r.active}
+        for rule in rules.values():  # a loop, not any(): this runs per channel per snapshot
+            if rule.active:
+                return {name: r.active.to_json() for name, r in rules.items() if r.active}
+        return None  # most channels, most of the time
 
     def unpack(self, values: Sequence[float], active: dict[str, Any] | None) -> None:
         """Restore `pack`'s values and `active_json`'s events."""

@@ -1000,8 +1000,11 @@ def _packed(channels: Sequence[Channel]) -> PackedChannels:
     scalars = np.array([c._pack_scalars(names) for c in channels], dtype=np.float64)
     n = parts.offset_size + parts.gain_size
     upper = upper_triangle(n)
-    squared = np.concatenate([c._squared._matrix.ravel() for c in channels])
-    squared = squared.reshape(len(channels), n, n)[:, upper[0], upper[1]]
+    # The matrices are Fortran-ordered (BLAS updates them in place): ravel("F") is a view
+    # where ravel() copied, and reshaping by rows gives each one's transpose, hence the
+    # swapped index pair (the same upper triangle, in the same order).
+    squared = np.concatenate([c._squared._matrix.ravel("F") for c in channels])
+    squared = squared.reshape(len(channels), n, n)[:, upper[1], upper[0]]
     squared_time = np.array([number(c._squared._time) for c in channels], dtype=np.float64)
     estimators, estimator_sides = pack_estimators([c._estimator for c in channels])
     rows = np.hstack(
