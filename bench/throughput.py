@@ -106,14 +106,16 @@ class RemoteCounter:
         self.count, self.distinct, self.last_arrival = 0, 0, 0.0
 
     def refresh(self) -> int:
-        self._link.send("status")
-        self.count, self.distinct, self.last_arrival = self._link.recv()
+        self._ask("status")
         return int(self.count)
 
     def stop(self) -> None:
-        self._link.send("stop")
-        self.count, self.distinct, self.last_arrival = self._link.recv()
+        self._ask("stop")
         self._process.join(10)
+
+    def _ask(self, request: str) -> None:
+        self._link.send(request)
+        self.count, self.distinct, self.last_arrival = self._link.recv()
 
 
 class Relay:

@@ -30,7 +30,7 @@ optional = st.none() | numbers
     quality=st.sampled_from(["ok", "learning", "input_stale", 'odd "word" ü']),
     code=st.integers(1, 9),
 )
-def test_same_bytes_as_json_dumps(
+def test_same_document_as_to_json(
     time: float,
     raw: float,
     corrected: float | None,
