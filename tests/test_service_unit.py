@@ -27,10 +27,11 @@ def config_text(
     basis: str = "[constant, {polynomial: {of: t, degree: 1, scale: 1d}}]",
     extra: str = "",
     max_channels: int = 100,
+    resident_channels: int = 100,
 ) -> str:
     return f"""
 state: {{dir: {state_dir}, snapshot_every: 3600s}}
-limits: {{max_channels: {max_channels}, queue: 1000}}
+limits: {{max_channels: {max_channels}, resident_channels: {resident_channels}, queue: 1000}}
 channels:
   - name: "{{1}}-gas"
     topic: site/+/gas
@@ -482,6 +483,69 @@ class TestParked:
         assert second.table.channels["a-gas"].last_time == rows[40][0]  # fresh, then fed
         assert any("cannot be read (a row of NaN)" in r.getMessage() for r in caplog.records)
         second.stop()
+
+
+class TestResidentBound:
+    """Beyond `limits.resident_channels` the least recently used channels are parked; since
+    packing is exact (the snapshot tests), nothing anyone can observe changes."""
+
+    SITES = tuple(f"s{i}" for i in range(10))
+    BASIS = (
+        "[constant, {polynomial: {of: t, degree: 1, scale: 1d}}, "
+        "{polynomial: {of: temp, degree: 1, center: 20}}]"
+    )
+
+    def feed(self, state_dir: Path, resident: int, rows: list[tuple[float, float, float]]) -> Any:
+        config = parse_config(config_text(state_dir, basis=self.BASIS, resident_channels=resident))
+        broker = FakeBroker()
+        service = start(config, broker, state_dir)
+        most_resident = 0
+        for k, (t, v, temp) in enumerate(rows):
+            for i, site in enumerate(self.SITES):
+                if (k + i) % 3 == 0:  # each channel's inputs now and then, out of step
+                    broker.deliver(f"site/{site}/temp", json.dumps({"time": t, "value": temp}))
+                broker.deliver(f"site/{site}/gas", reading_payload(t, v + 0.1 * i))
+            assert service.wait_idle(5)
+            most_resident = max(most_resident, len(service.table.channels))
+        return config, broker, service, most_resident
+
+    def test_outputs_are_those_of_an_unbounded_daemon(self, tmp_path: Path) -> None:
+        rows = readings(40)
+        _, free, unbounded, _ = self.feed(tmp_path / "free", 100, rows)
+        _, tight, bounded, most_resident = self.feed(tmp_path / "tight", 3, rows)
+        assert most_resident <= 3 and len(bounded.table) == 10
+        assert bounded.table.evicted > 300  # nearly every reading found its channel parked
+        for site in self.SITES:
+            got = tight.on(f"{site}-gas/corrected")
+            assert len(got) == len(rows) and got == free.on(f"{site}-gas/corrected")
+        assert tight.on("/alerts") == free.on("/alerts")
+        bounded.stop()
+        unbounded.stop()
+
+    def test_a_restart_continues_parked_channels_exactly(self, state_dir: Path) -> None:
+        rows = readings(50)
+        config, _, service, _ = self.feed(state_dir, 4, rows[:30])
+        service.stop()
+        config, _, again, _ = self.feed(state_dir, 4, rows[30:])
+        for i, site in enumerate(self.SITES):
+            mine = [(t, v + 0.1 * i, temp) for t, v, temp in rows]
+            channel = again.table.get(f"{site}-gas")
+            assert channel is not None
+            direct = Channel(config.channels[0], f"{site}-gas")
+            for k, (t, v, temp) in enumerate(mine):
+                if (k % 30 + i) % 3 == 0:
+                    direct.set_input("temp", t, temp)
+                direct.process(Sample(t, v))
+            got, expected = channel.estimator.coefficients, direct.estimator.coefficients
+            assert got.tobytes() == expected.tobytes()
+        again.stop()
+
+    def test_parked_blocks_are_compacted(self, state_dir: Path) -> None:
+        _, _, service, _ = self.feed(state_dir, 2, readings(60))
+        table = service.table
+        held = {id(packed): len(packed.sides) for packed, _ in table.parked.values()}
+        assert sum(held.values()) <= 2 * len(table.parked) + table.max_resident
+        service.stop()
 
 
 class TestReload:

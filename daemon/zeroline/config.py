@@ -93,6 +93,13 @@ LIMIT_KEYS = (
         default=10000,
         minimum=1,
     ),
+    Key(
+        "resident_channels",
+        "int",
+        "channels kept unpacked; the least recently used others wait packed",
+        default=2000,
+        minimum=1,
+    ),
     Key("queue", "int", "readings waiting for the model, at most", default=20000, minimum=10),
     Key("max_payload_bytes", "int", "larger payloads are refused", default=65536, minimum=64),
 )

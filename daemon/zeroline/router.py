@@ -34,6 +34,7 @@ Two halves, for two threads:
 
 from __future__ import annotations
 
+import heapq
 import logging
 import re
 from collections import OrderedDict
@@ -41,7 +42,7 @@ from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
-from zeroline.channel import Channel, unpack_channels
+from zeroline.channel import Channel, pack_channels, unpack_channels
 from zeroline.codecs import DecodeLimits, Decoder, make_decoder
 from zeroline.config import ChannelConfig, Config, InputConfig
 from zeroline.errors import InputError
@@ -251,12 +252,23 @@ class ChannelTable:
     something asks for them (`get`, a reading, an input value). A daemon with 10,000
     channels is back at work after reading one array instead of building 10,000 channels
     first (bench/snapshot.py), and a channel that never reports again costs its row only.
+
+    At most `max_resident` channels are kept as `Channel` objects (~7 KB each at p = 6);
+    beyond that the least recently used are parked too, a tenth of the bound at a time
+    (one `pack_channels` call, ~11 µs a channel), as rows of ~0.8 KB. Packing and unpacking
+    are exact (the snapshot tests check bit for bit), so parking changes no result: it
+    trades ~120 µs at a parked channel's next reading for memory that no longer grows
+    ~7 KB with every channel. Blocks whose rows have mostly been unparked are compacted.
     """
 
-    def __init__(self, routes: Routes, max_channels: int) -> None:
+    def __init__(self, routes: Routes, max_channels: int, max_resident: int | None = None) -> None:
         self.routes = routes
         self.max_channels = max_channels
+        self.max_resident = max_channels if max_resident is None else max(1, max_resident)
         self.channels: dict[str, Channel] = {}
+        self._used: dict[str, int] = {}  # resident channel → tick of its latest use
+        self._tick = 0
+        self.evicted = 0  # channels parked for the resident bound, since start
         self.origin: dict[str, tuple[str, tuple[str, ...]]] = {}  # name → (template, wildcards)
         self.parked: dict[str, tuple[PackedChannels, int]] = {}  # name → (block, its row)
         self._input_index: dict[str, list[tuple[str, str]]] = {}  # topic → (channel, input)
@@ -270,9 +282,16 @@ class ChannelTable:
         return len(self.channels) + len(self.parked)
 
     def get(self, name: str) -> Channel | None:
+        """The channel `name` for the worker to use, unparked if need be (which may park
+        the least recently used others: hold no other `Channel` of this table across a
+        call)."""
         channel = self.channels.get(name)
-        if channel is None and name in self.parked:
-            channel = self._unpark(name)
+        if channel is None:
+            if name not in self.parked:
+                return None
+            return self._unpark(name)
+        self._tick += 1
+        self._used[name] = self._tick
         return channel
 
     def view(self, name: str) -> Channel | None:
@@ -364,13 +383,50 @@ class ChannelTable:
         self.channels[name] = channel
         del self.parked[name]
         self._apply_latest_inputs(channel, wildcards)
+        self._now_resident(name)
         return channel
+
+    def _now_resident(self, name: str) -> None:
+        self._tick += 1
+        self._used[name] = self._tick
+        self._keep_resident_bound()
+
+    def _keep_resident_bound(self) -> None:
+        """Park the least recently used channels once more than `max_resident` are in use."""
+        excess = len(self.channels) - self.max_resident
+        if excess <= 0:
+            return
+        count = min(len(self.channels) - 1, excess + self.max_resident // 10)
+        oldest = heapq.nsmallest(count, self.channels, key=self._used.__getitem__)
+        groups: dict[int, list[str]] = {}
+        for name in oldest:
+            groups.setdefault(id(self.channels[name].config), []).append(name)
+        for names in groups.values():
+            packed = pack_channels([self.channels[name] for name in names])
+            for row, name in enumerate(names):
+                # Parked first, then no longer in use (as in `_unpark`, the other way).
+                self.parked[name] = (packed, row)
+                del self.channels[name]
+                self._used.pop(name, None)
+        self.evicted += len(oldest)
+        self._compact_parked()
+
+    def _compact_parked(self) -> None:
+        """Copy the live rows of parked blocks into new ones once most rows are dead (their
+        channels unparked since), so memory follows the parked count, not the history."""
+        held = {id(packed): len(packed.sides) for packed, _ in self.parked.values()}
+        if sum(held.values()) <= 2 * len(self.parked) + self.max_resident:
+            return
+        for _, names, packed in self.parked_blocks():
+            for row, name in enumerate(names):
+                self.parked[name] = (packed, row)
 
     def _adopt(self, channel: Channel, template: str, wildcards: tuple[str, ...]) -> None:
         self.channels[channel.name] = channel
         self.origin[channel.name] = (template, wildcards)
         self._index_inputs(channel.name, channel.config, wildcards)
         self._apply_latest_inputs(channel, wildcards)
+        self._now_resident(channel.name)
 
     def _index_inputs(self, name: str, config: ChannelConfig, wildcards: tuple[str, ...]) -> None:
         for spec in config.inputs.values():

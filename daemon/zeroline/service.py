@@ -197,7 +197,7 @@ class Service:
         self.counters = Counters()
         self.prefix = config.output_prefix
         self.routes = Routes(config)
-        self.table = ChannelTable(self.routes, int(config.limits["max_channels"]))
+        self.table = _channel_table(self.routes, config)
         self.snapshot_every = float(config.state["snapshot_every"])
         self._queue: Handoff[Work] = Handoff(maxsize=int(config.limits["queue"]))
         self._awaiting: deque[_Pending] = deque()
@@ -533,7 +533,8 @@ class Service:
             return False
         self._last_stats = now
         stats = {**self.counters.as_dict(), "channels": len(self.table)}
-        stats["channels_parked"] = len(self.table.parked)  # restored, not asked for since
+        stats["channels_parked"] = len(self.table.parked)  # restored or over the resident bound
+        stats["channels_evicted"] = self.table.evicted
         stats["states_unreadable"] = self.table.unpark_failures
         stats["queue"] = self._queue.qsize()
         stats["awaiting_commit"] = len(self._awaiting) + self._committer.pending()
@@ -734,7 +735,7 @@ class Service:
             config = self._reload
         assert config is not None
         routes = Routes(config)
-        table = ChannelTable(routes, int(config.limits["max_channels"]))
+        table = _channel_table(routes, config)
         table.load_latest_inputs(self.table.latest_inputs())
         kept = fresh = dropped = 0
         origin = self.table.origin
@@ -794,6 +795,11 @@ class Service:
                 return True
             time.sleep(0.005)
         return False
+
+
+def _channel_table(routes: Routes, config: Config) -> ChannelTable:
+    limits = config.limits
+    return ChannelTable(routes, int(limits["max_channels"]), int(limits["resident_channels"]))
 
 
 def _fill_name(routes: Routes, template: str, wildcards: tuple[str, ...]) -> str:
