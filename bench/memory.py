@@ -2,11 +2,16 @@
 
 `PYTHONPATH=daemon python bench/memory.py [--channels 10000] [--readings 2]`
 
-One private Mosquitto and one daemon. VmRSS (/proc/PID/status) is read once the daemon is
-connected and idle with 0 channels (the interpreter, numpy, paho and zeroline: the
-baseline), then after `readings` readings per channel have all come out corrected (warm-up:
-every channel created, its estimator and alert state in use) and a pause. "Per channel" is
-the difference over the channel count.
+One private Mosquitto; two daemons in turn, each with a fresh topic root:
+
+1. with the default `limits.resident_channels` (2,000): beyond it the least recently used
+   channels are kept as packed rows (`zeroline.router.ChannelTable`);
+2. with every channel resident (`resident_channels` = the channel count), for comparison.
+
+VmRSS (/proc/PID/status) is read once the daemon is connected and idle with 0 channels (the
+interpreter, numpy, scipy, paho and zeroline: the baseline), then after `readings` readings
+per channel have all come out corrected (warm-up: every channel created, its estimator and
+alert state in use) and a pause. "Per channel" is the difference over the channel count.
 """
 
 from __future__ import annotations
@@ -14,10 +19,12 @@ from __future__ import annotations
 import argparse
 import sys
 import time
+from dataclasses import dataclass
 
 from common import (
     Counter,
     Daemon,
+    Mosquitto,
     Publisher,
     machine,
     payload,
@@ -32,15 +39,19 @@ from common import (
 SETTLE_S = 3.0
 
 
-def main() -> int:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--channels", type=int, default=10000)
-    parser.add_argument("--readings", type=int, default=2)
-    args = parser.parse_args()
-    print(machine())
-    broker = start_broker()
+@dataclass
+class Measured:
+    idle_kib: int
+    loaded_kib: int
+    warm_s: float
+
+
+def measure(broker: Mosquitto, channels: int, readings: int, resident: int | None) -> Measured:
     directory = temporary_directory("zl-bench-mem-")
-    daemon = Daemon(write_config(directory, broker.port, client_id="zl-mem"))
+    tag = f"r{resident or 0}"
+    config = write_config(directory, broker.port, client_id=f"zl-mem-{tag}", resident=resident)
+    config.write_text(config.read_text().replace("site/+/gas", f"{tag}/+/gas"))
+    daemon = Daemon(config)
     counter = publisher = None
     try:
         daemon.start()
@@ -49,38 +60,56 @@ def main() -> int:
         counter = Counter(broker.port, "zeroline/+/corrected")
         publisher = Publisher(broker.port)
         start = time.time() - 86400.0 * 2
-        total = args.channels * args.readings
+        total = channels * readings
         began = time.perf_counter()
-        for i in range(args.readings):
-            for j in range(args.channels):
-                publisher.publish(f"site/m{j}/gas", payload(start + 60.0 * i, j + i))
-        if not wait_until(lambda: counter.count >= total, 600):
+        for i in range(readings):
+            for j in range(channels):
+                publisher.publish(f"{tag}/m{j}/gas", payload(start + 60.0 * i, j + i))
+        if not wait_until(lambda: counter is not None and counter.count >= total, 600):
             raise RuntimeError(f"only {counter.count} of {total} outputs")
         warm_s = time.perf_counter() - began
         time.sleep(SETTLE_S)
-        loaded = rss_kib(daemon.pid)
+        return Measured(idle, rss_kib(daemon.pid), warm_s)
     finally:
         if publisher is not None:
             publisher.stop()
         if counter is not None:
             counter.stop()
         daemon.stop()
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--channels", type=int, default=10000)
+    parser.add_argument("--readings", type=int, default=2)
+    args = parser.parse_args()
+    print(machine())
+    broker = start_broker()
+    try:
+        bounded = measure(broker, args.channels, args.readings, None)
+        unbounded = measure(broker, args.channels, args.readings, args.channels)
+    finally:
         broker.cleanup()
-    per_channel = (loaded - idle) * 1024 / args.channels
-    print(
-        f"\nVmRSS of the daemon, {args.channels} channels at p = 6, {args.readings} readings "
-        f"each (warm-up took {warm_s:.1f} s)"
-    )
+    print(f"\nVmRSS, {args.channels} channels at p = 6, {args.readings} readings each")
+    rows = []
+    for label, m in (("default resident bound (2,000)", bounded), ("all resident", unbounded)):
+        per_channel = (m.loaded_kib - m.idle_kib) * 1024 / args.channels
+        rows.append(
+            [
+                label,
+                f"{m.idle_kib / 1024:.1f}",
+                f"{m.loaded_kib / 1024:.1f}",
+                f"{per_channel:,.0f}",
+                f"{m.warm_s:.1f}",
+            ]
+        )
     print(
         table(
-            ["state", "VmRSS MiB", "target"],
-            [
-                ["idle, 0 channels", f"{idle / 1024:.1f}", ""],
-                [f"{args.channels} channels", f"{loaded / 1024:.1f}", "<= 80 MB total"],
-                ["per channel", f"{per_channel:,.0f} bytes", "<= 1 KB (1,024 bytes)"],
-            ],
+            ["daemon", "idle MiB", f"{args.channels} ch MiB", "bytes/ch", "warm-up s"],
+            rows,
         )
     )
+    print("targets: <= 1 KB (1,024 bytes) per channel, <= 80 MB total")
     print(machine())
     return 0
 
