@@ -115,7 +115,7 @@ def _subscription(template: str) -> str:
     return "/".join("+" if PLACEHOLDER.search(level) else level for level in template.split("/"))
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, slots=True)  # one per remembered topic: no __dict__
 class ReadingMatch:
     """A raw reading of the channel `template` makes (or feeds) channel `name`."""
 
@@ -126,7 +126,7 @@ class ReadingMatch:
     senml_name: str | None
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, slots=True)  # one per remembered topic: no __dict__
 class InputMatch:
     """A value of input `input_name` of channels of `template`."""
 
@@ -135,7 +135,7 @@ class InputMatch:
     decoder: Decoder
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, slots=True)  # one per remembered topic: no __dict__
 class ControlMatch:
     """A technician's control event for channel `channel`."""
 

@@ -213,7 +213,7 @@ class Service:
         self._journal_seq = 0
         self._journal_since_snapshot = 0
         self._dirty: set[str] = set()  # changed since the last snapshot (is one due?)
-        self._last_output: dict[str, tuple[float, str, bytes]] = {}  # see _publish_last_again
+        self._last_output: dict[str, tuple[float, bytes]] = {}  # see _publish_last_again
         self._last_snapshot = time.monotonic()
         self._last_stats = 0.0
         self._subscribed: set[str] = set()
@@ -433,7 +433,7 @@ class Service:
         if self._live:
             topic = f"{self.prefix}/{channel.name}/corrected"
             body = corrected_payload(result)
-            self._last_output[channel.name] = (result.time, topic, body)
+            self._last_output[channel.name] = (result.time, body)  # the topic is the name's
             self._send(topic, body)
             for sink in self.sinks:
                 sink.corrected(channel, result)
@@ -451,7 +451,7 @@ class Service:
         """
         last = self._last_output.get(name)
         if self._live and last is not None and last[0] == time_:
-            self._send(last[1], last[2], counter="republished")
+            self._send(f"{self.prefix}/{name}/corrected", last[1], counter="republished")
 
     def _apply_control(self, part: ControlPart, message: Message | None) -> dict[str, Any] | None:
         channel = self.table.get(part.channel)
