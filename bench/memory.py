@@ -35,6 +35,7 @@ from common import (
     wait_until,
     write_config,
 )
+from zeroline.config import LIMIT_KEYS
 
 SETTLE_S = 3.0
 
@@ -49,8 +50,9 @@ class Measured:
 def measure(broker: Mosquitto, channels: int, readings: int, resident: int | None) -> Measured:
     directory = temporary_directory("zl-bench-mem-")
     tag = f"r{resident or 0}"
-    config = write_config(directory, broker.port, client_id=f"zl-mem-{tag}", resident=resident)
-    config.write_text(config.read_text().replace("site/+/gas", f"{tag}/+/gas"))
+    config = write_config(
+        directory, broker.port, topic=f"{tag}/+/gas", client_id=f"zl-mem-{tag}", resident=resident
+    )
     daemon = Daemon(config)
     counter = publisher = None
     try:
@@ -92,7 +94,9 @@ def main() -> int:
         broker.cleanup()
     print(f"\nVmRSS, {args.channels} channels at p = 6, {args.readings} readings each")
     rows = []
-    for label, m in (("default resident bound (2,000)", bounded), ("all resident", unbounded)):
+    default = next(key.default for key in LIMIT_KEYS if key.name == "resident_channels")
+    labels = (f"default resident bound ({default:,})", "all resident")
+    for label, m in zip(labels, (bounded, unbounded), strict=True):
         per_channel = (m.loaded_kib - m.idle_kib) * 1024 / args.channels
         rows.append(
             [

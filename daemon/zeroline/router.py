@@ -264,7 +264,7 @@ class ChannelTable:
     def __init__(self, routes: Routes, max_channels: int, max_resident: int | None = None) -> None:
         self.routes = routes
         self.max_channels = max_channels
-        self.max_resident = max_channels if max_resident is None else max(1, max_resident)
+        self.max_resident = max_channels if max_resident is None else max_resident
         self.channels: dict[str, Channel] = {}
         self._used: dict[str, int] = {}  # resident channel → tick of its latest use
         self._tick = 0
@@ -290,8 +290,7 @@ class ChannelTable:
             if name not in self.parked:
                 return None
             return self._unpark(name)
-        self._tick += 1
-        self._used[name] = self._tick
+        self._touch(name)
         return channel
 
     def view(self, name: str) -> Channel | None:
@@ -386,9 +385,12 @@ class ChannelTable:
         self._now_resident(name)
         return channel
 
-    def _now_resident(self, name: str) -> None:
+    def _touch(self, name: str) -> None:
         self._tick += 1
         self._used[name] = self._tick
+
+    def _now_resident(self, name: str) -> None:
+        self._touch(name)
         self._keep_resident_bound()
 
     def _keep_resident_bound(self) -> None:
@@ -407,7 +409,7 @@ class ChannelTable:
                 # Parked first, then no longer in use (as in `_unpark`, the other way).
                 self.parked[name] = (packed, row)
                 del self.channels[name]
-                self._used.pop(name, None)
+                del self._used[name]
         self.evicted += len(oldest)
         self._compact_parked()
 
