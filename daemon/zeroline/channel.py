@@ -30,7 +30,6 @@ from typing import Any, ClassVar
 
 import numpy as np
 import numpy.typing as npt
-from scipy.linalg import blas
 
 from zeroline import quality as q
 from zeroline.alerts import Crossing, crossing_time
@@ -47,6 +46,7 @@ from zeroline.estimator import (
     unpack_estimators,
 )
 from zeroline.estimator import packed_layout as estimator_layout
+from zeroline.fortran import blas
 from zeroline.inputs import InputCache
 from zeroline.objects import shallow_copy
 from zeroline.state_layout import (

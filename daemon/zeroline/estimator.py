@@ -91,9 +91,9 @@ from typing import TYPE_CHECKING, Any, NamedTuple
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy.linalg import blas, lapack
 
 from zeroline.errors import InputError
+from zeroline.fortran import blas, lapack
 from zeroline.objects import shallow_copy
 from zeroline.state_layout import number, optional, upper_triangle
 

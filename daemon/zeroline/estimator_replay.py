@@ -57,10 +57,10 @@ from types import ModuleType
 
 import numpy as np
 from numpy.typing import ArrayLike
-from scipy.linalg import lapack
 
 from zeroline.errors import InputError
 from zeroline.estimator import PRIOR_TOP_UP, FloatArray, RecursiveEstimator, _absorb
+from zeroline.fortran import lapack
 
 #: Replay with the compiled kernel (`estimator_kernel`, numba) when it loads; False runs the
 #: numpy block path below (the tests run both against the per-sample path).

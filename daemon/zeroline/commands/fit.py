@@ -10,15 +10,17 @@ from __future__ import annotations
 import argparse
 import json
 import math
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from zeroline.basis import TIME, Basis, parse_basis
 from zeroline.csvdata import TIME_COLUMN, Table, read_table
 from zeroline.errors import ConfigError, InputError
-from zeroline.lsq import FitResult, fit_least_squares
 from zeroline.yamlfile import load_yaml
+
+if TYPE_CHECKING:
+    from zeroline.lsq import FitResult
 
 
 def add_parser(commands: Any) -> None:
@@ -79,6 +81,10 @@ def run(args: argparse.Namespace) -> int:
     if args.weights is not None:
         weights = table.require_complete(args.weights, purpose="--weights")
     design = design_from_table(table, basis)
+    # Imported here: zeroline.lsq needs all of scipy.linalg (~30 MB), and the console
+    # script imports every command's module to build its parser, the daemon's too.
+    from zeroline.lsq import fit_least_squares
+
     result = fit_least_squares(design, y, weights, basis.names)
     print(json.dumps(result.to_json()) if args.json else format_fit(result))
     return 0
