@@ -6,15 +6,18 @@ board only keeps and hands back what the channels produced).
 
 from __future__ import annotations
 
+import dataclasses
+import math
 from collections.abc import Callable
 
+import numpy as np
 import pytest
 
 from zeroline import outputs
-from zeroline.channel import Channel, Sample
+from zeroline.channel import Channel, Corrected, Sample
 from zeroline.config import parse_config
 from zeroline.outputs import StatusBoard
-from zeroline.status import HISTORY_LENGTH
+from zeroline.status import _BLANK_LAST, HISTORY_LENGTH, LastResults
 
 CONFIG = parse_config("""
 channels:
@@ -104,3 +107,62 @@ def test_rings_of_removed_channels_make_room_at_most_once_a_minute(
     clock[0] += 31.0
     feed({"s10-cell": late}, board, rows=1, first=1)
     assert board.channel_status("s10-cell").recent  # type: ignore[union-attr]
+
+
+def _result(time: float, **changes: object) -> Corrected:
+    fields: dict[str, object] = {
+        "time": time,
+        "raw": 1.25,
+        "corrected": 1.0,
+        "baseline": 0.25,
+        "uncertainty": 0.01,
+        "quality": "good",
+        "quality_code": 1,
+        "flags": (),
+        "gain": None,
+        "drift_rate": 1e-9,
+        "learned": True,
+    }
+    fields.update(changes)
+    return Corrected(**fields)  # type: ignore[arg-type]
+
+
+def test_last_results_give_back_every_field_but_the_coefficients() -> None:
+    last = LastResults()
+    first = _result(1.0, gain=0.5, coefficients=np.ones(3))  # every number present
+    odd = _result(
+        2.0,
+        corrected=None,
+        baseline=None,
+        uncertainty=None,
+        drift_rate=None,
+        quality="suspect",
+        quality_code=3,
+        flags=("stale_input", "out_of_span"),
+        learned=False,
+        gain=2.5,
+    )
+    last.put("a", first)
+    last.put("b", odd)
+    assert last.get("a") == dataclasses.replace(first, coefficients=None)
+    back = last.get("b")
+    assert back is not None
+    assert (back.quality, back.quality_code, back.flags) == ("suspect", 3, odd.flags)
+    assert (back.gain, back.learned) == (2.5, False)
+    for missing in (back.corrected, back.baseline, back.uncertainty, back.drift_rate):
+        assert missing is not None and math.isnan(missing)  # None is kept as NaN
+    assert last.get("nobody") is None
+
+
+def test_last_results_reuse_the_slot_of_a_discarded_channel() -> None:
+    last = LastResults()
+    for i in range(3):
+        last.put(f"c{i}", _result(float(i)))
+    last.put("c1", _result(10.0, flags=("late",)))  # an update stays in its slot
+    last.discard("c0")
+    last.put("new", _result(20.0))
+    assert len(last) == 3
+    assert last.get("c0") is None
+    assert [last.get(n).time for n in ("c1", "c2", "new")] == [10.0, 2.0, 20.0]  # type: ignore[union-attr]
+    assert last.get("c1").flags == ("late",)  # type: ignore[union-attr]
+    assert len(last._values) == 3 * len(_BLANK_LAST)  # the freed slot was taken again

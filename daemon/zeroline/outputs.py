@@ -27,7 +27,14 @@ from zeroline.alerts import AlertEvent
 from zeroline.channel import Channel, Corrected
 from zeroline.config import Config
 from zeroline.metrics import channel_gauges
-from zeroline.status import HISTORY_CHANNELS, ChannelStatus, History, Metric, channel_status
+from zeroline.status import (
+    HISTORY_CHANNELS,
+    ChannelStatus,
+    History,
+    LastResults,
+    Metric,
+    channel_status,
+)
 
 HEALTH_EVERY_S = 10.0
 PRUNE_EVERY_S = 60.0
@@ -140,7 +147,7 @@ class StatusBoard:
         self._ready = ready
         self._extra = extra
         self._lock = threading.Lock()
-        self._last: dict[str, Corrected] = {}
+        self._last = LastResults()  # numbers, not the Corrected objects: ~90 B a channel
         self._history: dict[str, History] = {}
         self._last_prune = -math.inf
         self._started = time.time()
@@ -149,7 +156,7 @@ class StatusBoard:
 
     def corrected(self, channel: Channel, result: Corrected) -> None:
         with self._lock:
-            self._last[channel.name] = result
+            self._last.put(channel.name, result)
             history = self._history.get(channel.name)
             if history is None:  # not setdefault: that would build a History every call
                 if len(self._history) >= self._history_channels and not self._pruned():
@@ -168,7 +175,7 @@ class StatusBoard:
         existing = set(self._names())
         for name in [n for n in self._history if n not in existing]:
             del self._history[name]
-            self._last.pop(name, None)
+            self._last.discard(name)
         return len(self._history) < self._history_channels
 
     def alert(self, channel: Channel, event: AlertEvent) -> None:
