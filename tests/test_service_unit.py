@@ -209,6 +209,26 @@ class TestDelivery:
         assert len(broker.acked) == 5  # skipped messages are acknowledged too
         service.stop()
 
+    def test_last_outputs_are_kept_for_as_many_channels_as_may_be_resident(
+        self, state_dir: Path
+    ) -> None:
+        """The kept outputs follow limits.resident_channels: the two channels published
+        last get their output again on a repeat, the one before them (forgotten) does not,
+        and the repeat is still skipped and reported."""
+        broker = FakeBroker()
+        text = config_text(state_dir, resident_channels=2)
+        service = start(parse_config(text), broker, state_dir)
+        for site in ("a", "b", "c"):
+            broker.deliver(f"site/{site}/gas", reading_payload(T0, 1.0))
+        for site in ("a", "b", "c"):
+            broker.deliver(f"site/{site}/gas", reading_payload(T0, 1.0))
+        assert service.wait_idle(5)
+        assert list(service._last_output) == ["b-gas", "c-gas"]
+        assert [len(broker.on(f"{s}-gas/corrected")) for s in "abc"] == [1, 2, 2]
+        assert service.counters.get("republished") == 2
+        assert service.counters.get("skipped_not_newer") == 3
+        service.stop()
+
     def test_bad_payload_goes_to_the_error_topic_truncated(self, state_dir: Path) -> None:
         """Malformed JSON: error with topic, reason, detail and the first 200 characters."""
         broker = FakeBroker()

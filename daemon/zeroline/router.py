@@ -55,7 +55,10 @@ PLACEHOLDER = re.compile(r"\{(\d+)\}")
 INPUTS_PER_CHANNEL_BOUND = 4  # latest input values kept: this many per allowed channel
 #: What unpacking a saved row can raise when the row is not a state of the config's model.
 _UNREADABLE = (KeyError, TypeError, ValueError, IndexError, InputError)
-MATCHES_REMEMBERED_PER_CHANNEL = 2  # topics whose matches are remembered, per allowed channel
+#: Topics whose matches are remembered, per resident channel (limits.resident_channels):
+#: ~300 bytes each, so a site of 10,000 channels does not pay 3 MB for topics it sees
+#: once a minute; a topic not remembered costs one match, a few µs.
+MATCHES_REMEMBERED_PER_CHANNEL = 2
 
 
 def fill(template: str, wildcards: tuple[str, ...]) -> str:
@@ -173,7 +176,8 @@ class Routes:
     def __init__(self, config: Config, limits: DecodeLimits | None = None) -> None:
         self.config = config
         self._matched: dict[str, tuple[Match, ...]] = {}
-        self._matched_bound = MATCHES_REMEMBERED_PER_CHANNEL * int(config.limits["max_channels"])
+        kept = min(int(config.limits["max_channels"]), int(config.limits["resident_channels"]))
+        self._matched_bound = MATCHES_REMEMBERED_PER_CHANNEL * kept
         self.prefix = config.output_prefix
         limits = limits or DecodeLimits(max_bytes=int(config.limits["max_payload_bytes"]))
         self.limits = limits

@@ -73,7 +73,7 @@ import logging
 import queue
 import threading
 import time
-from collections import deque
+from collections import OrderedDict, deque
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from typing import Any, Protocol
@@ -213,7 +213,9 @@ class Service:
         self._journal_seq = 0
         self._journal_since_snapshot = 0
         self._dirty: set[str] = set()  # changed since the last snapshot (is one due?)
-        self._last_output: dict[str, tuple[float, bytes]] = {}  # see _publish_last_again
+        # See _publish_last_again; for the most recently published channels only, as many
+        # as may be resident (a redelivery follows its reading within seconds).
+        self._last_output: OrderedDict[str, tuple[float, bytes]] = OrderedDict()
         self._last_snapshot = time.monotonic()
         self._last_stats = 0.0
         self._subscribed: set[str] = set()
@@ -433,11 +435,18 @@ class Service:
         if self._live:
             topic = f"{self.prefix}/{channel.name}/corrected"
             body = corrected_payload(result)
-            self._last_output[channel.name] = (result.time, body)  # the topic is the name's
+            self._remember_output(channel.name, result.time, body)
             self._send(topic, body)
             for sink in self.sinks:
                 sink.corrected(channel, result)
         self._publish_alerts(channel, events)
+
+    def _remember_output(self, name: str, time_: float, body: bytes) -> None:
+        kept = self._last_output
+        kept[name] = (time_, body)  # the topic is the name's
+        kept.move_to_end(name)
+        if len(kept) > self.table.max_resident:
+            kept.popitem(last=False)
 
     def _publish_last_again(self, name: str, time_: float) -> None:
         """A redelivery of a channel's last reading: publish its output again, same bytes.
@@ -446,7 +455,8 @@ class Service:
         not yet written to disk (Mosquitto saves periodically). Their readings' own
         acknowledgements came later still, so those readings are redelivered after its
         restart; the model must not apply them twice, but their outputs may be gone. The
-        last reading of a channel is the one most at risk, and its output is remembered.
+        last reading of a channel is the one most at risk, and its output is remembered
+        for the `limits.resident_channels` channels published most recently.
         Consumers de-duplicate on (channel, time) as for any QoS 1 resend.
         """
         last = self._last_output.get(name)
