@@ -111,24 +111,26 @@ class LastResults:
         slot = self._slots.get(name)
         if slot is None:
             slot = self._new_slot(name)
-        values, at = self._values, slot * _LAST_WIDTH
-        for offset, number in enumerate(
+        nan = math.nan
+        corrected, baseline, uncertainty = result.corrected, result.baseline, result.uncertainty
+        gain, drift_rate = result.gain, result.drift_rate
+        at = slot * _LAST_WIDTH
+        self._values[at : at + _LAST_WIDTH] = array.array(  # one store: put runs per reading
+            "d",
             (
                 result.time,
                 result.raw,
-                result.corrected,
-                result.baseline,
-                result.uncertainty,
-                result.gain,
-                result.drift_rate,
-            )
-        ):
-            values[at + offset] = math.nan if number is None else number
-        at += len(_LAST_NUMBERS)
-        values[at] = result.quality_code
-        values[at + 1] = 1.0 if result.learned else 0.0
-        values[at + 2] = _index_of(result.quality, self._word_index, self._words)
-        values[at + 3] = _index_of(result.flags, self._flags_index, self._flag_sets)
+                nan if corrected is None else corrected,
+                nan if baseline is None else baseline,
+                nan if uncertainty is None else uncertainty,
+                nan if gain is None else gain,
+                nan if drift_rate is None else drift_rate,
+                result.quality_code,
+                1.0 if result.learned else 0.0,
+                _index_of(result.quality, self._word_index, self._words),
+                _index_of(result.flags, self._flags_index, self._flag_sets),
+            ),
+        )
 
     def get(self, name: str) -> Corrected | None:
         slot = self._slots.get(name)
