@@ -80,14 +80,16 @@ def write_config(
     topic: str = "site/+/gas",
     client_id: str = "zl-bench",
     inflight: int = 100,
-    queue: int = 20000,
+    queue: int | None = None,
     snapshot_every: str = "60s",
     resident: int | None = None,
 ) -> Path:
     """A daemon config with one wildcard template: one channel per site at p = 6
-    (`resident`: limits.resident_channels, the daemon's default if None)."""
+    (`resident`, `queue`: limits.resident_channels and limits.queue, the daemon's defaults
+    if None)."""
     path = directory / "zeroline.yaml"
     bound = "" if resident is None else f", resident_channels: {resident}"
+    bound += "" if queue is None else f", queue: {queue}"
     path.write_text(f"""
 broker:
   host: 127.0.0.1
@@ -96,7 +98,7 @@ broker:
   inflight: {inflight}
 state: {{dir: {directory / "state"}, snapshot_every: {snapshot_every}}}
 http: {{listen: "127.0.0.1:0"}}
-limits: {{queue: {queue}, max_channels: 20000{bound}}}
+limits: {{max_channels: 20000{bound}}}
 logging: {{level: info}}
 channels:
   - name: "{{1}}-gas"

@@ -119,7 +119,7 @@ def test_design_example_top_level_sections(design: Config) -> None:
     assert dict(design.limits) == {
         "max_channels": 10000,
         "resident_channels": 2000,
-        "queue": 20000,
+        "queue": 2000,
         "max_payload_bytes": 65536,
     }
 

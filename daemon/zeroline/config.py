@@ -100,7 +100,7 @@ LIMIT_KEYS = (
         default=2000,
         minimum=1,
     ),
-    Key("queue", "int", "readings waiting for the model, at most", default=20000, minimum=10),
+    Key("queue", "int", "readings waiting for the model, at most", default=2000, minimum=10),
     Key("max_payload_bytes", "int", "larger payloads are refused", default=65536, minimum=64),
 )
 INPUT_KEYS = (
