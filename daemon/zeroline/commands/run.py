@@ -17,6 +17,7 @@ from typing import Any
 
 from zeroline.config import Config, ConfigProblemsError, load_config
 from zeroline.errors import UserError
+from zeroline.heap import return_large_blocks
 from zeroline.http_status import StatusServer, start_http_server
 from zeroline.logs import setup_logging
 from zeroline.mqtt import BrokerSettings, SocketBroker
@@ -38,6 +39,7 @@ def add_parser(commands: Any) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
+    return_large_blocks()  # before the state is loaded: see zeroline.heap
     config = load_config(args.config)
     setup_logging(str(config.logging["format"]), str(config.logging["level"]))
     settings = BrokerSettings.from_config(
