@@ -335,9 +335,34 @@ def test_restored_channels_have_the_constructors_attributes() -> None:
             assert name in settings or value is None, name
     estimator_settings = {"prior_sd", "column_scale", "_scale", "_prior_root", "_scale_outer"}
     estimator_settings |= {"_shape", "half_life", "window", "n_terms", "_top_up_after"}
+    shared_prior = {"prior_mean", "_prior_rows", "_prior_center"}  # replaced, never changed
     for name, value in fields(first.estimator).items():
         if value is fields(second.estimator)[name] and isinstance(value, (np.ndarray, list)):
-            assert name in estimator_settings, name
+            assert name in estimator_settings | shared_prior, name
+            if name in shared_prior:
+                assert isinstance(value, np.ndarray) and not value.flags.writeable, name
+
+
+def test_a_rezero_gives_the_channel_its_own_prior_and_leaves_its_siblings_alone() -> None:
+    """Channels of one template share the prior's arrays (restored ones too); a re-zero of
+    one replaces its arrays, so the others keep theirs, bit for bit, and a channel
+    restored after the re-zero gets the moved prior back."""
+    scenario = temperature_scenario()
+    made = Channel(scenario.config, "a")
+    _run(scenario, made, 0, 50)
+    first, second = _through_file([made, made], ["a", "b"])
+    before = {n: np.array(getattr(second.estimator, n)) for n in ("prior_mean", "_prior_center")}
+    rows_before = np.array(second.estimator._prior_rows)
+    first.estimator.shift(0, 0.25)
+    assert first.estimator._prior_rows is not second.estimator._prior_rows
+    assert first.estimator.prior_mean[0] == before["prior_mean"][0] + 0.25
+    for name, value in before.items():
+        assert np.array_equal(getattr(second.estimator, name), value), name
+    assert np.array_equal(second.estimator._prior_rows, rows_before)
+    [again] = _through_file([first], ["a"])
+    assert np.array_equal(again.estimator.prior_mean, first.estimator.prior_mean)
+    assert np.array_equal(again.estimator._prior_rows, first.estimator._prior_rows)
+    assert again.estimator._prior_rows is not second.estimator._prior_rows
 
 
 def test_a_changed_model_is_refused() -> None:

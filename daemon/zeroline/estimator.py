@@ -298,6 +298,9 @@ class RecursiveEstimator:
         self._prior_rows[:, p] = self.prior_mean / self.prior_sd
         self._prior_center = self.prior_mean * self._scale  # prior mean, internal units
         self._prior_root = 1.0 / (self.prior_sd * self._scale)  # Λ, internal units
+        # Shared by every copy of a template's estimator until a re-zero (`shift`) gives one
+        # its own (~0.7 KB a channel); read-only, so an in-place change fails loudly.
+        _read_only(self.prior_mean, self._prior_rows, self._prior_center)
         self._row = np.zeros((1, p + 1), order="F")  # scratch for one absorbed row
         self._row_x = self._row[0, :p]  # its φ part, a contiguous view
         self._shape = (p,)
@@ -763,10 +766,14 @@ class RecursiveEstimator:
             raise InputError(f"shift needs a term index below {self.n_terms} and a finite delta")
         p = self.n_terms
         moved = delta * self._scale[term]  # in internal units
+        # New arrays, not changes in place: the old ones may be shared with other channels.
         self.prior_mean = self.prior_mean.copy()
         self.prior_mean[term] += delta
+        self._prior_rows = np.array(self._prior_rows, order="F")
         self._prior_rows[:, p] += moved * self._prior_rows[:, term]
+        self._prior_center = self._prior_center.copy()
         self._prior_center[term] += moved
+        _read_only(self.prior_mean, self._prior_rows, self._prior_center)
         if self.window is None:
             self._factor[:p, p] += moved * self._factor[:p, term]  # z ← z + R·Δx
             self._changed()
@@ -847,10 +854,8 @@ class RecursiveEstimator:
         """
         p = self.n_terms
         new = shallow_copy(self)
-        # Arrays that methods change in place are the copy's own (`shift` changes the
-        # prior rows and centre, LAPACK the factor and the scratch row).
-        new._prior_rows = np.array(self._prior_rows, order="F")
-        new._prior_center = np.array(self._prior_center)
+        # Arrays that methods change in place are the copy's own (LAPACK changes the factor
+        # and the scratch row); the prior's are shared and read-only (`shift` replaces them).
         new._row = np.zeros((1, p + 1), order="F")
         new._row_x = new._row[0, :p]
         if self._time is None and self.window is None:  # never fed: the factor is the prior's
@@ -990,6 +995,11 @@ def _field_bounds(p: int) -> tuple[int, ...]:
     return tuple(itertools.accumulate((width for _, width in packed_layout(p)), initial=0))
 
 
+def _read_only(*arrays: FloatArray) -> None:
+    for array in arrays:
+        array.setflags(write=False)
+
+
 def _rows(vectors: Sequence[FloatArray], size: int) -> FloatArray:
     """Vectors of `size` numbers as the rows of one array (faster than np.stack)."""
     return np.concatenate(vectors).reshape(len(vectors), size)
@@ -1019,27 +1029,33 @@ def unpack_estimators(
     upper = upper_triangle(p + 1)
     factors = np.zeros((n, p + 1, p + 1))  # each [i] is Fᵀ, so [i].T is F in Fortran order
     factors[:, upper[1], upper[0]] = packed_factor
-    prior_rows = np.empty((n, p + 1, p))  # likewise transposed
-    prior_rows[:] = prototype._prior_rows.T
-    prior_rows[:, p, :] = prior_column
+    # Most channels still have the template's prior (only a re-zero moves it): they share
+    # the prototype's read-only arrays instead of holding copies.
+    own_prior = ~(
+        np.equal(prior_column, prototype._prior_rows[:, p]).all(axis=1)
+        & np.equal(prior_center, prototype._prior_center).all(axis=1)
+        & np.equal(prior_mean, prototype.prior_mean).all(axis=1)
+    )
     scratch = np.zeros((n, 1, p + 1))
     valid = (solution[:, 0] == 1.0).tolist()
     penalties = solution[:, 1].tolist()
     result = []
     for i, (g, g_time, time, ref_weight, ref_time, count, information) in enumerate(clock.tolist()):
         est = shallow_copy(prototype)
-        est._prior_rows = prior_rows[i].T
-        est._prior_center = prior_center[i]
+        if own_prior[i]:
+            est._prior_rows = np.array(prototype._prior_rows, order="F")
+            est._prior_rows[:, p] = prior_column[i]
+            est._prior_center, est.prior_mean = prior_center[i].copy(), prior_mean[i].copy()
+            _read_only(est.prior_mean, est._prior_rows, est._prior_center)
         est._row = scratch[i]
         est._row_x = scratch[i, 0, :p]
-        est.prior_mean = prior_mean[i]
         est._time = optional(time)
         est._factor = factors[i].T
         est._g, est._g_time = g, optional(g_time)
         est._prior_ref_weight, est._prior_ref_time = ref_weight, optional(ref_time)
         est._count, est._information = count, information
-        if valid[i]:
-            est._theta, est._penalty = solution[i, 2:], penalties[i]
+        if valid[i]:  # a copy: a view would keep this whole block of rows alive
+            est._theta, est._penalty = solution[i, 2:].copy(), penalties[i]
         if est.window is not None:
             side = sides[i]
             if side is None:
