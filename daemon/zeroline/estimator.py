@@ -1031,11 +1031,12 @@ def unpack_estimators(
     factors[:, upper[1], upper[0]] = packed_factor
     # Most channels still have the template's prior (only a re-zero moves it): they share
     # the prototype's read-only arrays instead of holding copies.
-    own_prior = ~(
+    template_prior = (
         np.equal(prior_column, prototype._prior_rows[:, p]).all(axis=1)
         & np.equal(prior_center, prototype._prior_center).all(axis=1)
         & np.equal(prior_mean, prototype.prior_mean).all(axis=1)
     )
+    own_prior: list[bool] = (~template_prior).tolist()
     scratch = np.zeros((n, 1, p + 1))
     valid = (solution[:, 0] == 1.0).tolist()
     penalties = solution[:, 1].tolist()
