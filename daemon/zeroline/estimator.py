@@ -1036,7 +1036,7 @@ def unpack_estimators(
         & np.equal(prior_center, prototype._prior_center).all(axis=1)
         & np.equal(prior_mean, prototype.prior_mean).all(axis=1)
     )
-    own_prior: list[bool] = (~template_prior).tolist()
+    own_prior = np.logical_not(template_prior).tolist()  # Python bools for the loop
     scratch = np.zeros((n, 1, p + 1))
     valid = (solution[:, 0] == 1.0).tolist()
     penalties = solution[:, 1].tolist()
