@@ -1,7 +1,7 @@
 """End-to-end throughput at QoS 1: zeroline against a naive relay on the same broker.
 
 `PYTHONPATH=daemon python bench/throughput.py [--channels 1000] [--per-channel 20]
-[--rounds 2] [--profile DIR]`
+[--rounds 2] [--profile DIR] [--inflight N] [--resident N]`
 
 One private Mosquitto serves every round. Rounds interleave relay, daemon, relay, daemon
 (these machines are noisy: the ratio is taken within the run). In each round, with a fresh
@@ -156,6 +156,7 @@ def run_round(
             topic=f"{root}/+/gas",
             client_id=f"zl-bench-{index}",
             inflight=args.inflight,
+            resident=args.resident,
         )
         process = Daemon(config)
         process.start()
@@ -228,6 +229,12 @@ def main() -> int:
     parser.add_argument("--rounds", type=int, default=2)
     parser.add_argument("--profile", metavar="DIR")
     parser.add_argument("--inflight", type=int, default=100, help="the daemon's broker.inflight")
+    parser.add_argument(
+        "--resident",
+        type=int,
+        help="the daemon's limits.resident_channels (default: its own); below --channels "
+        "every reading of a round-robin unpacks its channel, the cost of a tight bound",
+    )
     args = parser.parse_args()
     print(machine())
     broker = start_broker()
