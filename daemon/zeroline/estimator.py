@@ -934,6 +934,10 @@ def packed_layout(n_terms: int) -> list[tuple[str, int]]:
     ]
 
 
+#: Field index of "estimator.prior_mean" in `packed_layout`: it, prior_column and
+#: prior_center follow one another (unpacking compares the three at once).
+_PRIOR_FIRST = 2
+
 #: The scalars of "estimator.clock"; None is stored as NaN (no time is NaN).
 _CLOCK = ("g", "g_time", "time", "prior_ref_weight", "prior_ref_time", "count", "information")
 
@@ -1030,13 +1034,13 @@ def unpack_estimators(
     factors = np.zeros((n, p + 1, p + 1))  # each [i] is Fᵀ, so [i].T is F in Fortran order
     factors[:, upper[1], upper[0]] = packed_factor
     # Most channels still have the template's prior (only a re-zero moves it): they share
-    # the prototype's read-only arrays instead of holding copies.
-    template_prior = (
-        np.equal(prior_column, prototype._prior_rows[:, p]).all(axis=1)
-        & np.equal(prior_center, prototype._prior_center).all(axis=1)
-        & np.equal(prior_mean, prototype.prior_mean).all(axis=1)
-    )
-    own_prior = np.logical_not(template_prior).tolist()  # Python bools for the loop
+    # the prototype's read-only arrays instead of holding copies. Compared as bytes: bit
+    # for bit (0.0 and -0.0 differ), and one comparison a row.
+    template_prior = np.concatenate(
+        (prototype.prior_mean, prototype._prior_rows[:, p], prototype._prior_center)
+    ).tobytes()
+    priors = block[:, bounds[_PRIOR_FIRST] : bounds[_PRIOR_FIRST + 3]]
+    own_prior = [row.tobytes() != template_prior for row in priors]
     scratch = np.zeros((n, 1, p + 1))
     valid = (solution[:, 0] == 1.0).tolist()
     penalties = solution[:, 1].tolist()
