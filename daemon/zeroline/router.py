@@ -263,12 +263,12 @@ class ChannelTable:
     channels is back at work after reading one array instead of building 10,000 channels
     first (bench/snapshot.py), and a channel that never reports again costs its row only.
 
-    At most `max_resident` channels are kept as `Channel` objects (~7 KB each at p = 6);
+    At most `max_resident` channels are kept as `Channel` objects (~5 KB each at p = 6);
     beyond that the least recently used are parked too, a tenth of the bound at a time
     (one `pack_channels` call, ~11 µs a channel), as rows of ~0.8 KB. Packing and unpacking
     are exact (the snapshot tests check bit for bit), so parking changes no result: it
     trades ~120 µs at a parked channel's next reading for memory that no longer grows
-    ~7 KB with every channel. Blocks whose rows have mostly been unparked are compacted.
+    ~5 KB with every channel. Blocks whose rows have mostly been unparked are compacted.
     """
 
     def __init__(self, routes: Routes, max_channels: int, max_resident: int | None = None) -> None:
