@@ -934,12 +934,12 @@ def packed_layout(n_terms: int) -> list[tuple[str, int]]:
     ]
 
 
-#: Field index of "estimator.prior_mean" in `packed_layout`: it, prior_column and
-#: prior_center follow one another (unpacking compares the three at once).
-_PRIOR_FIRST = 2
-
 #: The scalars of "estimator.clock"; None is stored as NaN (no time is NaN).
 _CLOCK = ("g", "g_time", "time", "prior_ref_weight", "prior_ref_time", "count", "information")
+
+#: Field index of "estimator.prior_mean" in `packed_layout`: it, prior_column and
+#: prior_center follow one another (unpacking compares the three at once).
+_PRIOR_FIRST = [name for name, _ in packed_layout(1)].index("estimator.prior_mean")
 
 
 def pack_estimators(

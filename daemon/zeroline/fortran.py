@@ -10,7 +10,8 @@ extension modules, `scipy.linalg._fblas` and `scipy.linalg._flapack`, that need 
 loading their files directly costs about 7 MB (measured with bench/memory.py's idle figure).
 
 They are the same compiled wrappers `scipy.linalg.blas` and `scipy.linalg.lapack` re-export
-(tests/test_fortran.py compares every routine used, bit for bit). Where the files are not
+(tests/test_fortran.py checks that every routine used is the very object scipy exports,
+so results are scipy's bit for bit). Where the files are not
 where scipy 1.x keeps them, this falls back to those public modules: heavier, never
 different. `loaded_directly` says which happened (the test asserts the light path on the
 pinned scipy, so a move of the files is noticed rather than silently costing 23 MB).
@@ -27,8 +28,8 @@ from types import ModuleType
 def _extension(package_dir: Path, name: str) -> ModuleType | None:
     """The extension module `scipy.linalg.<name>` loaded from its file, or None if absent.
 
-    Not entered in `sys.modules`: a later `import scipy.linalg` (the `fit` command, tests)
-    loads its own copy of the same library the usual way."""
+    The module registers itself under its full name as it initialises, so a later
+    `import scipy.linalg` (the `fit` command, tests) finds it and uses the same object."""
     for suffix in importlib.machinery.EXTENSION_SUFFIXES:
         path = package_dir / "linalg" / f"{name}{suffix}"
         if path.is_file():

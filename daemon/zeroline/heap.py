@@ -11,8 +11,8 @@ threshold fixed at 128 KiB, 2.2 MiB, and 5.8 MiB less resident memory in all.
 
 Fixing the threshold (`mallopt(M_MMAP_THRESHOLD, ...)`) also turns off that adjustment
 (glibc mallopt(3)). The cost is a map and an unmap per large block, which the per-reading
-path does not make often (a socket read of up to 256 KiB, a few hundred a second at the
-highest rates). A `MALLOC_MMAP_THRESHOLD_` in the environment is the operator's choice
+path does not make (the MQTT reader receives into one reused buffer for that reason,
+`zeroline.mqtt`). A `MALLOC_MMAP_THRESHOLD_` in the environment is the operator's choice
 and is left alone; on other C libraries (musl) this does nothing.
 """
 

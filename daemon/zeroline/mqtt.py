@@ -255,7 +255,8 @@ class _Connection:
         self._frames: list[bytes] = []
         # Reads land here and only what arrived is copied out: `recv(READ_BYTES)` would
         # allocate 256 KB per read, which glibc maps and unmaps each time once the daemon
-        # fixes its mmap threshold (zeroline.heap): +15-20 µs of CPU a reading, measured.
+        # fixes its mmap threshold (zeroline.heap); the throughput rounds' CPU per reading
+        # was 15-20 µs higher with it (a noisy figure: two runs).
         self._inbox = memoryview(bytearray(READ_BYTES))
         self._wake_read, self._wake_write = socket.socketpair()
         self._wake_read.setblocking(False)
