@@ -12,9 +12,10 @@ from typing import Any
 import numpy as np
 import pytest
 
-from zeroline.channel import Channel, Sample
+from zeroline.channel import Channel, Sample, pack_channels
 from zeroline.config import Config, parse_config
 from zeroline.mqtt import Message
+from zeroline.parked import CHUNK_ROWS
 from zeroline.service import Service
 from zeroline.state import LEGACY_SNAPSHOT_NAME, SNAPSHOT_NAME, StateStore
 
@@ -560,26 +561,26 @@ class TestResidentBound:
             assert got.tobytes() == expected.tobytes()
         again.stop()
 
-    def test_parked_blocks_are_compacted(self, state_dir: Path) -> None:
-        """A block stays held while any of its rows is parked: once dead rows (channels
-        unpacked since) outnumber the parked ones plus the bound, the live rows are copied
-        into blocks of their own, unchanged."""
-        config, _, first, _ = self.feed(state_dir, 100, readings(5))
-        first.stop()
-        second = start(config, FakeBroker(), state_dir)  # all 10 parked in one block
-        table = second.table
-        for site in self.SITES[:8]:
-            assert table.get(f"{site}-gas") is not None
-        [(restored, _)] = {
-            id(packed): (packed, row) for packed, row in table.parked.values()
-        }.values()
-        before = {name: restored.rows[row].tobytes() for name, (_, row) in table.parked.items()}
-        assert len(restored.sides) == 10 and len(before) == 2
-        table.max_resident = 1  # 10 rows held > 2 × 2 parked + 1
-        table._compact_parked()
-        for name, (packed, row) in table.parked.items():
-            assert len(packed.sides) == 2 and packed.rows[row].tobytes() == before[name]
-        second.stop()
+    def test_parked_rows_take_freed_slots(self, tmp_path: Path) -> None:
+        """Channels parked and unparked over and over reuse the slots their template's store
+        freed: it holds as many slots as channels were ever parked at once (one array of
+        them here), and every parked row is, bit for bit, what the same channel of a daemon
+        that never parked it packs to."""
+        rows = readings(20)
+        _, _, service, _ = self.feed(tmp_path / "tight", 3, rows)
+        _, _, unbounded, _ = self.feed(tmp_path / "free", 100, rows)
+        table = service.table
+        assert table.evicted > 100 and len(table.parked) == 7
+        [store] = table._stores.values()
+        assert len(store) == 7 and store.capacity == CHUNK_ROWS
+        assert store._names.count(None) + 7 == len(store._names) <= 10
+        [(_, names, packed)] = table.parked_blocks()
+        assert sorted(names) == sorted(table.parked)
+        for name, row in zip(names, packed.rows, strict=True):
+            expected = pack_channels([unbounded.table.channels[name]]).rows[0]
+            assert row.tobytes() == expected.tobytes()
+        service.stop()
+        unbounded.stop()
 
 
 class TestReload:

@@ -1019,6 +1019,11 @@ def _packed(channels: Sequence[Channel]) -> PackedChannels:
     return PackedChannels(config.model_key(), parts.layout, rows, sides)
 
 
+def blank_packed(config: ChannelConfig) -> PackedChannels:
+    """The packed state of a never-fed channel of `config`: one row."""
+    return pack_channels([_TemplateParts.of(config).blank_channel()])
+
+
 def unpack_channels(
     config: ChannelConfig, names: Sequence[str], packed: PackedChannels
 ) -> list[Channel]:
@@ -1049,8 +1054,7 @@ def conformed(config: ChannelConfig, packed: PackedChannels, count: int) -> Pack
         return packed
     layout = [(str(name), int(size)) for name, size in packed.layout]
     if layout != parts.layout:  # alert rules or inputs changed in the config
-        blank_row = pack_channels([parts.blank_channel()]).rows[0]
-        rows = rearranged(rows, layout, parts.layout, blank_row)
+        rows = rearranged(rows, layout, parts.layout, blank_packed(config).rows[0])
     return PackedChannels(packed.model, parts.layout, rows, list(packed.sides))
 
 

@@ -43,11 +43,12 @@ from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
-from zeroline.channel import Channel, pack_channels, unpack_channels
+from zeroline.channel import Channel, blank_packed, pack_channels, unpack_channels
 from zeroline.codecs import DecodeLimits, Decoder, make_decoder
 from zeroline.config import ChannelConfig, Config, InputConfig
 from zeroline.errors import InputError
 from zeroline.logs import RateLimitedLogger
+from zeroline.parked import ParkedRows
 from zeroline.state_layout import PackedChannels
 
 _log = logging.getLogger(__name__)
@@ -265,10 +266,10 @@ class ChannelTable:
 
     At most `max_resident` channels are kept as `Channel` objects (~5 KB each at p = 6);
     beyond that the least recently used are parked too, a tenth of the bound at a time
-    (one `pack_channels` call, ~11 µs a channel), as rows of ~0.8 KB. Packing and unpacking
-    are exact (the snapshot tests check bit for bit), so parking changes no result: it
-    trades ~120 µs at a parked channel's next reading for memory that no longer grows
-    ~5 KB with every channel. Blocks whose rows have mostly been unparked are compacted.
+    (one `pack_channels` call, ~11 µs a channel), as rows of ~0.7 KB in their template's
+    `ParkedRows`. Packing and unpacking are exact (the snapshot tests check bit for bit),
+    so parking changes no result: it trades ~120 µs at a parked channel's next reading for
+    memory that no longer grows ~5 KB with every channel.
     """
 
     def __init__(self, routes: Routes, max_channels: int, max_resident: int | None = None) -> None:
@@ -280,7 +281,8 @@ class ChannelTable:
         self._tick = 0
         self.evicted = 0  # channels parked for the resident bound, since start
         self.origin: dict[str, tuple[str, tuple[str, ...]]] = {}  # name → (template, wildcards)
-        self.parked: dict[str, tuple[PackedChannels, int]] = {}  # name → (block, its row)
+        self.parked: dict[str, int] = {}  # name → its slot in its template's store
+        self._stores: dict[str, ParkedRows] = {}  # template → its parked rows
         self._input_index: dict[str, list[tuple[str, str]]] = {}  # topic → (channel, input)
         self._latest_inputs: OrderedDict[str, tuple[float, float]] = OrderedDict()
         self.max_inputs = INPUTS_PER_CHANNEL_BOUND * max_channels
@@ -314,6 +316,8 @@ class ChannelTable:
             return None
         try:
             return self._unpacked(name)
+        except KeyError:  # unparked by the worker meanwhile
+            return self.channels.get(name)
         except _UNREADABLE:
             return None  # the worker logs it and counts it when the channel is used
 
@@ -353,28 +357,40 @@ class ChannelTable:
     ) -> None:
         """Add restored channels as `packed` rows (in the layout of `template`'s config)."""
         config = self.routes.templates[template]
-        for row, (name, levels) in enumerate(zip(names, wildcards, strict=True)):
-            self.parked[name] = (packed, row)
+        store = self._store(template)
+        with store.lock:
+            slots = store.put(names, packed)
+            for name, slot in zip(names, slots, strict=True):
+                self.parked[name] = slot
+        for name, levels in zip(names, wildcards, strict=True):
             self.origin[name] = (template, levels)
             self._index_inputs(name, config, levels)
 
     def parked_blocks(self) -> list[tuple[str, list[str], PackedChannels]]:
-        """Parked channels by block: (template, names, their packed rows)."""
-        blocks: dict[int, tuple[PackedChannels, list[str], list[int]]] = {}
-        for name, (packed, row) in self.parked.items():
-            entry = blocks.setdefault(id(packed), (packed, [], []))
-            entry[1].append(name)
-            entry[2].append(row)
-        return [
-            (self.origin[names[0]][0], names, packed.take(rows))
-            for packed, names, rows in blocks.values()
-        ]
+        """Parked channels by template: (template, names, their packed rows, copied)."""
+        blocks = []
+        for template, store in self._stores.items():
+            with store.lock:
+                names, slots = store.held()
+                if names:
+                    blocks.append((template, names, store.rows(slots)))
+        return blocks
+
+    def _store(self, template: str) -> ParkedRows:
+        store = self._stores.get(template)
+        if store is None:
+            store = ParkedRows(blank_packed(self.routes.templates[template]))
+            self._stores[template] = store
+        return store
 
     def _unpacked(self, name: str) -> Channel:
-        """A parked channel unpacked from its row (it stays parked); _UNREADABLE if not."""
-        packed, row = self.parked[name]
-        config = self.routes.templates[self.origin[name][0]]
-        [channel] = unpack_channels(config, [name], packed.take([row]))
+        """A parked channel unpacked from its row (it stays parked); _UNREADABLE if not.
+        KeyError if it is no longer parked (another thread's `view` lost a race)."""
+        template = self.origin[name][0]
+        store = self._stores[template]
+        with store.lock:  # the slot is read and copied before the worker can reuse it
+            packed = store.rows([self.parked[name]])
+        [channel] = unpack_channels(self.routes.templates[template], [name], packed)
         return channel
 
     def _unpark(self, name: str) -> Channel:
@@ -390,7 +406,9 @@ class ChannelTable:
         # In use first, then no longer parked: `names` (read from the status page's thread,
         # parked first) then never misses the channel.
         self.channels[name] = channel
-        del self.parked[name]
+        store = self._stores[self.origin[name][0]]
+        with store.lock:
+            store.release(self.parked.pop(name))
         self._apply_latest_inputs(channel, wildcards)
         self._now_resident(name)
         return channel
@@ -410,28 +428,20 @@ class ChannelTable:
             return
         count = min(len(self.channels) - 1, excess + self.max_resident // 10)
         oldest = heapq.nsmallest(count, self.channels, key=self._used.__getitem__)
-        groups: dict[int, list[str]] = {}
+        groups: dict[str, list[str]] = {}
         for name in oldest:
-            groups.setdefault(id(self.channels[name].config), []).append(name)
-        for names in groups.values():
+            groups.setdefault(self.origin[name][0], []).append(name)
+        for template, names in groups.items():
             packed = pack_channels([self.channels[name] for name in names])
-            for row, name in enumerate(names):
-                # Parked first, then no longer in use (as in `_unpark`, the other way).
-                self.parked[name] = (packed, row)
+            store = self._store(template)
+            with store.lock:
+                slots = store.put(names, packed)
+                for name, slot in zip(names, slots, strict=True):
+                    self.parked[name] = slot  # parked first, then no longer in use
+            for name in names:
                 del self.channels[name]
                 del self._used[name]
         self.evicted += len(oldest)
-        self._compact_parked()
-
-    def _compact_parked(self) -> None:
-        """Copy the live rows of parked blocks into new ones once most rows are dead (their
-        channels unparked since), so memory follows the parked count, not the history."""
-        held = {id(packed): len(packed.sides) for packed, _ in self.parked.values()}
-        if sum(held.values()) <= 2 * len(self.parked) + self.max_resident:
-            return
-        for _, names, packed in self.parked_blocks():
-            for row, name in enumerate(names):
-                self.parked[name] = (packed, row)
 
     def _adopt(self, channel: Channel, template: str, wildcards: tuple[str, ...]) -> None:
         self.channels[channel.name] = channel
