@@ -582,3 +582,23 @@ def test_dot_and_the_sequential_sum_are_accurate_dot_products(n: int) -> None:
         assert abs(float(x.dot(y)) - exact) <= bound
         if n < SEQUENTIAL_BELOW:
             assert abs(sequential_dot(x.tolist(), y.tolist()) - exact) <= bound
+
+
+def test_the_shared_scratch_row_is_each_threads_own() -> None:
+    """Estimators of one size share the scratch row LAPACK absorbs into their factor (each
+    refills it before use), but per thread: estimators updated in two threads never
+    write into the same array, and the row has the layout dtpqrt needs."""
+    import threading
+
+    from zeroline.estimator import _scratch_row
+
+    here = _scratch_row(4)
+    there: list[tuple[np.ndarray, np.ndarray]] = []
+    thread = threading.Thread(target=lambda: there.append(_scratch_row(4)))
+    thread.start()
+    thread.join()
+    assert _scratch_row(4)[0] is here[0]  # one per thread and size, made once
+    assert not np.shares_memory(here[0], there[0][0])
+    row, row_x = here
+    assert row.shape == (1, 5) and row.flags.f_contiguous and np.shares_memory(row, row_x)
+    assert row_x.shape == (4,) and row_x.flags.c_contiguous

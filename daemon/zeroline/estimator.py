@@ -86,6 +86,7 @@ from __future__ import annotations
 import functools
 import itertools
 import math
+import threading
 from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any, NamedTuple
 
@@ -136,6 +137,30 @@ _dtrtrs = lapack.dtrtrs
 # rounded product per element however it is computed.
 _ddot, _dscal, _dcopy = blas.ddot, blas.dscal, blas.dcopy
 _new_tuple = tuple.__new__
+
+
+class _ScratchRows(threading.local):
+    """Per thread, per number of terms, the scratch row LAPACK absorbs into a factor.
+
+    Every estimator refills it before each use, so they share one per thread instead of
+    each holding its own two small arrays (~0.5 KB an estimator, most of it the arrays'
+    headers, on a daemon that keeps thousands resident)."""
+
+    def __init__(self) -> None:
+        self.rows: dict[int, tuple[FloatArray, FloatArray]] = {}
+
+
+_SCRATCH = _ScratchRows()
+
+
+def _scratch_row(p: int) -> tuple[FloatArray, FloatArray]:
+    """The (1, p + 1) Fortran-ordered scratch row and its contiguous φ part."""
+    rows = _SCRATCH.rows
+    pair = rows.get(p)
+    if pair is None:
+        row = np.zeros((1, p + 1), order="F")
+        pair = rows[p] = (row, row[0, :p])
+    return pair
 
 
 def dot(x: FloatArray, y: FloatArray) -> float:
@@ -243,8 +268,6 @@ class RecursiveEstimator:
         "_prior_root",
         "_prior_rows",
         "_r",
-        "_row",
-        "_row_x",
         "_scale",
         "_scale_outer",
         "_shape",
@@ -301,8 +324,6 @@ class RecursiveEstimator:
         # Shared by every copy of a template's estimator until a re-zero (`shift`) gives one
         # its own (~0.7 KB a channel); read-only, so an in-place change fails loudly.
         _read_only(self.prior_mean, self._prior_rows, self._prior_center)
-        self._row = np.zeros((1, p + 1), order="F")  # scratch for one absorbed row
-        self._row_x = self._row[0, :p]  # its φ part, a contiguous view
         self._shape = (p,)
         self._scale_outer = np.outer(self._scale, self._scale)
         self._time: float | None = None
@@ -529,8 +550,8 @@ class RecursiveEstimator:
     def _learn(self, x: FloatArray, y: float, weight: float) -> None:
         p = self.n_terms
         root = math.sqrt(weight) / self._g  # G absorbs the row divided by g
-        row = self._row
-        _dscal(root, _dcopy(x, self._row_x))  # x·root into the row's view, in place
+        row, row_x = _scratch_row(p)
+        _dscal(root, _dcopy(x, row_x))  # x·root into the row's view, in place
         row[0, p] = y * root
         if self.window is not None:
             assert self._time is not None
@@ -852,12 +873,9 @@ class RecursiveEstimator:
         channel template keeps one pristine estimator and copies it for every channel.
         Arrays that any method changes in place are the copy's own.
         """
-        p = self.n_terms
         new = shallow_copy(self)
-        # Arrays that methods change in place are the copy's own (LAPACK changes the factor
-        # and the scratch row); the prior's are shared and read-only (`shift` replaces them).
-        new._row = np.zeros((1, p + 1), order="F")
-        new._row_x = new._row[0, :p]
+        # Arrays that methods change in place are the copy's own (LAPACK changes the
+        # factor); the prior's are shared and read-only (`shift` replaces them).
         if self._time is None and self.window is None:  # never fed: the factor is the prior's
             new._factor = np.array(self._f, order="F")
         else:
@@ -1041,7 +1059,6 @@ def unpack_estimators(
     ).tobytes()
     priors = block[:, bounds[_PRIOR_FIRST] : bounds[_PRIOR_FIRST + 3]]
     own_prior = [row.tobytes() != template_prior for row in priors]
-    scratch = np.zeros((n, 1, p + 1))
     valid = (solution[:, 0] == 1.0).tolist()
     penalties = solution[:, 1].tolist()
     result = []
@@ -1052,8 +1069,6 @@ def unpack_estimators(
             est._prior_rows[:, p] = prior_column[i]
             est._prior_center, est.prior_mean = prior_center[i].copy(), prior_mean[i].copy()
             _read_only(est.prior_mean, est._prior_rows, est._prior_center)
-        est._row = scratch[i]
-        est._row_x = scratch[i, 0, :p]
         est._time = optional(time)
         est._factor = factors[i].T
         est._g, est._g_time = g, optional(g_time)
