@@ -1080,7 +1080,9 @@ def _unpacked(config: ChannelConfig, names: Sequence[str], packed: PackedChannel
     for i, name in enumerate(names):
         information = object.__new__(SquaredInformation)
         information.half_life = half_life
-        information._matrix = squared[i]
+        # The transpose (the same symmetric matrix) is Fortran-ordered, as BLAS updates it
+        # in place: the C-ordered view would be copied at the channel's next reading.
+        information._matrix = squared[i].T
         information._time = optional(squared_time[i])
         channels.append(blank.restored_copy(name, scalars[i], information, estimators[i], sides[i]))
     return channels
