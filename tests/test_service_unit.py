@@ -582,6 +582,49 @@ class TestResidentBound:
         service.stop()
         unbounded.stop()
 
+    def test_the_status_view_reads_the_right_row_while_slots_are_reused(
+        self, state_dir: Path
+    ) -> None:
+        """The status page's thread views channels while the worker parks and unparks them
+        under a bound of 2 (slots are freed and taken again all the time): every view is
+        the channel asked for, never a row another channel has since been parked into.
+        Channel i's readings sit at 10·i, so its baseline's constant term names it."""
+        config = parse_config(config_text(state_dir, resident_channels=2))
+        broker = FakeBroker()
+        service = start(config, broker, state_dir)
+        sites = [f"v{i}" for i in range(8)]
+        for k in range(6):
+            for i, site in enumerate(sites):
+                broker.deliver(f"site/{site}/gas", reading_payload(T0 + 60.0 * k, 10.0 * i))
+        assert service.wait_idle(10)
+        wrong: list[tuple[str, float]] = []
+        views = 0
+        done = threading.Event()
+
+        def look() -> None:
+            nonlocal views
+            while not done.is_set():
+                for i, site in enumerate(sites):
+                    channel = service.table.view(f"{site}-gas")
+                    if channel is None:
+                        continue
+                    views += 1
+                    level = float(channel.estimator.coefficients[0])
+                    if abs(level - 10.0 * i) > 1.0:
+                        wrong.append((site, level))
+
+        viewer = threading.Thread(target=look)
+        viewer.start()
+        for k in range(6, 40):
+            for i, site in enumerate(sites):
+                broker.deliver(f"site/{site}/gas", reading_payload(T0 + 60.0 * k, 10.0 * i))
+        assert service.wait_idle(10)
+        done.set()
+        viewer.join()
+        assert service.table.evicted > 200 and views > 100
+        assert wrong == []
+        service.stop()
+
 
 class TestReload:
     def test_reload_keeps_unchanged_models_and_resets_changed_ones(self, state_dir: Path) -> None:
