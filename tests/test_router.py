@@ -138,6 +138,53 @@ class TestChannelTable:
         assert channel is not None
         assert channel.to_state()["inputs"]["temp"] == [200.0, 26.0]
 
+    def test_origins_are_read_back_from_names_and_kept_where_they_cannot_be(
+        self, routes: Routes
+    ) -> None:
+        """Wildcard levels are kept only for names that do not parse back to them:
+        `{1}-{2}-no2` from `a` and `b-c` reads back as `a-b` and `c`."""
+        table = ChannelTable(routes, max_channels=10)
+        assert table.create("{1}-{2}-no2", ("n", "1")) is not None
+        assert table.create("{1}-{2}-no2", ("a", "b-c")) is not None
+        assert table.create("ph", ()) is not None
+        assert table._odd_wildcards == {"a-b-c-no2": ("a", "b-c")}
+        assert table.origin_of("n-1-no2") == ("{1}-{2}-no2", ("n", "1"))
+        assert table.origin_of("a-b-c-no2") == ("{1}-{2}-no2", ("a", "b-c"))
+        assert table.origin_of("ph") == ("ph", ())
+        assert table.template_of("nothing") is None
+        with pytest.raises(KeyError):
+            table.wildcards_of("nothing")
+
+    def test_an_unparsable_name_gets_its_inputs_from_its_own_topic_after_parking(
+        self, routes: Routes
+    ) -> None:
+        """A parked channel whose levels are kept (not parsed) still takes the latest value
+        of its own input topic when it is unpacked: site/a/met/temp, not site/a-b/…"""
+        table = ChannelTable(routes, max_channels=10, max_resident=1)
+        odd = table.create("{1}-{2}-no2", ("a", "b-c"))
+        assert odd is not None
+        assert table.create("{1}-{2}-no2", ("n", "1")) is not None  # parks a-b-c-no2
+        assert "a-b-c-no2" in table.parked
+        table.deliver_input("site/a-b/met/temp", 300.0, 99.0)  # another site's temperature
+        table._remember("site/a/met/temp", 200.0, 21.5)  # its own, seen while it was parked
+        channel = table.get("a-b-c-no2")
+        assert channel is not None
+        assert channel.to_state()["inputs"]["temp"] == [200.0, 21.5]
+
+    def test_a_name_that_leaves_a_level_out_keeps_its_levels(self) -> None:
+        table = ChannelTable(
+            Routes(
+                parse_config("""
+channels:
+  - {name: "{2}-v", topic: x/+/+/v, basis: [constant]}
+""")
+            ),
+            max_channels=10,
+        )
+        assert table.create("{2}-v", ("p", "q")) is not None
+        assert table.origin_of("q-v") == ("{2}-v", ("p", "q"))
+        assert table._odd_wildcards == {"q-v": ("p", "q")}
+
 
 def test_remembered_matches_are_the_same_and_bounded() -> None:
     """A topic is matched once; a flood of distinct topics cannot grow the memory."""

@@ -386,12 +386,12 @@ class Service:
         if part.template not in self.routes.templates:
             self._error(message, "unknown_topic", f"channel template {part.template!r} is gone")
             return None
-        origin = self.table.origin.get(part.name)
-        if origin is not None and origin[0] != part.template:
+        known = self.table.template_of(part.name)
+        if known is not None and known != part.template:
             self._error(
                 message,
                 "name_collision",
-                f"channel {part.name!r} already comes from template {origin[0]!r}; give the "
+                f"channel {part.name!r} already comes from template {known!r}; give the "
                 "templates names that cannot collide",
             )
             return None
@@ -646,7 +646,9 @@ class Service:
         parked ones (restored, not asked for since) as the rows they were restored from."""
         members: dict[str, list[tuple[str, Channel]]] = {}
         for name, channel in self.table.channels.items():
-            members.setdefault(self.table.origin[name][0], []).append((name, channel))
+            template = self.table.template_of(name)
+            assert template is not None  # every channel in use has its origin
+            members.setdefault(template, []).append((name, channel))
         blocks: dict[str, tuple[list[str], list[PackedChannels]]] = {}
         for template, group in members.items():
             packed = pack_channels([channel for _, channel in group])
@@ -655,9 +657,9 @@ class Service:
             entry = blocks.setdefault(template, ([], []))
             entry[0].extend(names)
             entry[1].append(packed)
-        origin = self.table.origin
+        wildcards_of = self.table.wildcards_of
         return [
-            SnapshotGroup(template, names, [origin[n][1] for n in names], concatenated(parts))
+            SnapshotGroup(template, names, [wildcards_of(n) for n in names], concatenated(parts))
             for template, (names, parts) in blocks.items()
         ]
 
@@ -748,22 +750,22 @@ class Service:
         table = _channel_table(routes, config)
         table.load_latest_inputs(self.table.latest_inputs())
         kept = fresh = dropped = 0
-        origin = self.table.origin
+        wildcards_of = self.table.wildcards_of
         for template, names, packed in self.table.parked_blocks():
             new_config = routes.templates.get(template)
             if new_config is not None and packed.model == new_config.model_key():
                 conformed_rows = conformed(new_config, packed, len(names))
-                table.park(template, names, [origin[n][1] for n in names], conformed_rows)
+                table.park(template, names, [wildcards_of(n) for n in names], conformed_rows)
                 kept += len(names)
             elif new_config is None:
                 dropped += len(names)
             else:
                 for name in names:
-                    table.adopt(Channel(new_config, name), template, origin[name][1])
+                    table.adopt(Channel(new_config, name), template, wildcards_of(name))
                     _log.info("channel %r: its model changed; it starts fresh", name)
                 fresh += len(names)
         for name, channel in self.table.channels.items():
-            template, wildcards = self.table.origin[name]
+            template, wildcards = self.table.origin_of(name)
             new_config = routes.templates.get(template)
             if new_config is None:
                 dropped += 1
