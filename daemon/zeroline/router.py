@@ -67,7 +67,7 @@ def fill(template: str, wildcards: tuple[str, ...]) -> str:
     """`template` with {1}, {2}… replaced by the matched wildcard levels.
 
     Interned: a channel's name is a key of several tables (channels, parked rows, their
-    origin, the status board's, the snapshot's dirty set), and each match of a topic the
+    template, the status board's, the snapshot's dirty set), and each match of a topic the
     match memory has forgotten makes the name anew; one shared string per channel, not one
     per table, saves ~60 bytes a table a channel.
 
