@@ -14,6 +14,7 @@ from __future__ import annotations
 import csv
 import json
 import os
+import signal
 import socket
 import subprocess
 import sys
@@ -193,6 +194,30 @@ class TestViews:
             assert view["coefficients"] == pytest.approx(reference, rel=TOLERANCE, abs=TOLERANCE)
         status, missing = get_json(url + "/api/channels/no-such-channel")
         assert status == 404 and "no-such-channel" in missing["error"]
+        assert daemon.terminate() == 0
+
+    def test_a_channel_made_after_a_reload_has_its_view(
+        self, broker: Mosquitto, running: tuple[Daemon, str]
+    ) -> None:
+        """SIGHUP gives the daemon a new channel table: the status page asks that one, so
+        a channel first seen after the reload has its /api/channels/<name> view, as does
+        one kept over it."""
+        daemon, url = running
+        subscriber = subscribe(broker, "zeroline/+/corrected")
+        start = recent_start(2.0)
+        publish_rows(broker, "a", readings(5, seed=43, start=start, step=60.0))
+        assert subscriber.wait_count("/a-gas/corrected", 5, 30)
+        assert daemon.process is not None
+        daemon.process.send_signal(signal.SIGHUP)
+        assert wait_until(lambda: "config reloaded" in daemon.new_log(), 10), daemon.new_log()
+        publish_rows(broker, "c", readings(5, seed=44, start=start, step=60.0))
+        assert subscriber.wait_count("/c-gas/corrected", 5, 30)
+        for channel in ("a-gas", "c-gas"):
+            status, view = get_json(f"{url}/api/channels/{channel}")
+            assert (
+                status == 200
+                and view["last_time"] == outputs(subscriber, channel, "corrected")[-1]["time"]
+            )
         assert daemon.terminate() == 0
 
 

@@ -7,7 +7,7 @@ import pytest
 
 from zeroline.channel import blank_packed
 from zeroline.config import parse_config
-from zeroline.parked import CHUNK_ROWS, ParkedRows, shared_columns
+from zeroline.parked import CHUNK_ROWS, FIRST_CHUNK_ROWS, ParkedRows, shared_columns
 from zeroline.state_layout import PackedChannels
 
 CONFIG = parse_config("""
@@ -53,16 +53,25 @@ def test_rows_come_back_bit_for_bit_and_the_prior_is_kept_once() -> None:
     assert store.rows([slots[3]]).rows.tobytes() == rows[3:4].tobytes()
 
 
-def test_freed_slots_are_reused_and_the_store_grows_by_whole_arrays() -> None:
+def test_a_few_channels_hold_a_few_rows() -> None:
+    """The first array is small and each further one doubles: 5 channels hold 8 rows."""
     template = blank_packed(CONFIG)
     store = ParkedRows(template)
-    rows = rows_like(template, CHUNK_ROWS + 1)
+    store.put(list("abcde"), packed(template, rows_like(template, 5)))
+    assert store.capacity == FIRST_CHUNK_ROWS == 8 and len(store) == 5
+
+
+def test_freed_slots_are_reused_and_the_store_grows_by_doubling_arrays() -> None:
+    template = blank_packed(CONFIG)
+    store = ParkedRows(template)
+    rows = rows_like(template, 2 * CHUNK_ROWS + 1)  # 8 + 16 + … + 128 + 256 + 256 slots
     slots = store.put([f"c{i}" for i in range(len(rows))], packed(template, rows))
-    assert store.capacity == 2 * CHUNK_ROWS and len(store) == CHUNK_ROWS + 1
+    assert [len(chunk) for chunk in store._chunks] == [8, 16, 32, 64, 128, 256, 256]
+    assert store.capacity == 760 and len(store) == len(rows)
     for slot in slots[:10]:
         store.release(slot)
     again = store.put([f"d{i}" for i in range(10)], packed(template, rows[:10][::-1]))
-    assert sorted(again) == sorted(slots[:10]) and store.capacity == 2 * CHUNK_ROWS
+    assert sorted(again) == sorted(slots[:10]) and store.capacity == 760
     assert store.rows(again).rows.tobytes() == rows[:10][::-1].tobytes()
     names, held = store.held()
     assert len(names) == len(rows) and held == sorted(held)
@@ -84,12 +93,19 @@ def test_side_entries_follow_their_slot() -> None:
     assert slot == slots[1] and store.rows([slot]).sides == [None]
 
 
-def test_rows_of_another_layout_or_model_are_refused() -> None:
+def test_rows_of_another_layout_or_model_or_count_are_refused_before_any_slot_is_taken() -> None:
     template = blank_packed(CONFIG)
     store = ParkedRows(template)
-    other = PackedChannels("another model", template.layout, template.rows, [None])
+    other_model = PackedChannels("another model", template.layout, template.rows, [None])
     with pytest.raises(ValueError, match="own model and layout"):
-        store.put(["a"], other)
+        store.put(["a"], other_model)
+    layout = [*template.layout[:-1], (template.layout[-1][0], template.layout[-1][1] + 1)]
+    other_layout = PackedChannels(template.model, layout, template.rows, [None])
+    with pytest.raises(ValueError, match="own model and layout"):
+        store.put(["a"], other_layout)
+    with pytest.raises(ValueError, match="one row and one side per name"):
+        store.put(["a", "b"], template)
+    assert len(store) == 0 and store.held() == ([], [])
 
 
 def test_a_layout_without_prior_fields_keeps_every_column() -> None:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import pytest
 
+from zeroline.channel import Channel, Sample, pack_channels
 from zeroline.config import parse_config
 from zeroline.router import (
     ChannelTable,
@@ -184,6 +185,28 @@ channels:
         assert table.create("{2}-v", ("p", "q")) is not None
         assert table.origin_of("q-v") == ("{2}-v", ("p", "q"))
         assert table._odd_wildcards == {"q-v": ("p", "q")}
+
+    def test_a_name_parked_twice_keeps_its_first_state(
+        self, routes: Routes, caplog: pytest.LogCaptureFixture
+    ) -> None:
+        """A snapshot that lists a channel twice (damaged, hand-made, or two templates
+        making one name) parks its first state only, with a warning; a name already in
+        the table keeps what it has. Two rows for one channel would both go into every
+        later snapshot."""
+        config = routes.templates["{1}-{2}-no2"]
+        first, second = Channel(config, "n-1-no2"), Channel(config, "n-1-no2")
+        first.process(Sample(100.0, 1.0, {"temp": 20.0}))
+        table = ChannelTable(routes, max_channels=10)
+        packed = pack_channels([first, second])
+        table.park("{1}-{2}-no2", ["n-1-no2", "n-1-no2"], [("n", "1"), ("n", "1")], packed)
+        assert "1 saved channel state(s)" in caplog.text
+        assert len(table.parked) == 1 and len(table) == 1
+        [(_, names, rows)] = table.parked_blocks()
+        assert names == ["n-1-no2"] and rows.rows.tobytes() == packed.rows[:1].tobytes()
+        again = pack_channels([second])
+        table.park("{1}-{2}-no2", ["n-1-no2"], [("n", "1")], again)
+        [(_, names, rows)] = table.parked_blocks()
+        assert names == ["n-1-no2"] and rows.rows.tobytes() == packed.rows[:1].tobytes()
 
 
 def test_remembered_matches_are_the_same_and_bounded() -> None:

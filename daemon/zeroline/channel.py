@@ -194,8 +194,9 @@ class SquaredInformation:
     Only the upper triangle is kept up to date (BLAS dsyr/dsymv, one call each per
     reading, and dscal for the forgetting); `matrix()` mirrors it. The snapshot stores that
     triangle, so a restored matrix computes exactly the same quadratic forms. The matrix is
-    always contiguous (C order as unpacked, Fortran order once dsyr has returned it), so
-    its flat view is a view and dscal scales it in place.
+    always Fortran-ordered (an unpacked one is the transpose of a C-ordered block's
+    matrix, the same symmetric values), so dsyr updates it in place and its flat view is
+    a view that dscal scales in place.
     """
 
     __slots__ = ("_matrix", "_time", "half_life")

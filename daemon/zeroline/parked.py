@@ -2,10 +2,12 @@
 
 A parked channel (restored from a snapshot and not asked for since, or pushed out by the
 resident bound) is nothing but its row of `zeroline.state_layout`. Kept as numbered slots
-of a few large arrays rather than as one small array per parking, a row costs its values
-and nothing more: no block object, no (block, row) pair, no int per channel, no dead rows
-left in old blocks. Freed slots are reused first, so the store's size follows the most
-channels parked at once.
+of a few arrays rather than as one small array per parking, a row costs its values and
+its slot number: no block object, no (block, row) pair, no dead rows left in old blocks.
+Freed slots are reused first, so the store's size follows the most channels parked at
+once (it never shrinks: at most `limits.max_channels` rows). The arrays double from
+`FIRST_CHUNK_ROWS` up to `CHUNK_ROWS` rows, so a template with a handful of channels holds
+a handful of rows, not a whole large array.
 
 The prior's columns ("estimator.prior_mean", "prior_column", "prior_center": 3p values)
 are the template's for every channel that has never been re-zeroed, so the store keeps
@@ -19,6 +21,7 @@ unparks them.
 
 from __future__ import annotations
 
+import bisect
 import itertools
 import threading
 from collections.abc import Sequence
@@ -31,8 +34,11 @@ from zeroline.state_layout import Layout, PackedChannels
 
 Array = npt.NDArray[np.float64]
 
-#: Rows per array of the store: 256 rows of ~84 values are ~170 KB, above glibc's mmap
-#: threshold as `zeroline.heap` sets it, so a freed array goes back to the system whole.
+#: Rows of the store's first array; each further one doubles, up to `CHUNK_ROWS`.
+FIRST_CHUNK_ROWS = 8
+#: Rows of the store's largest arrays: 256 rows of ~84 values are ~170 KB, above glibc's
+#: mmap threshold as `zeroline.heap` sets it, so each is a mapping of its own and leaves
+#: no hole in the heap when the store goes (a config reload).
 CHUNK_ROWS = 256
 
 #: The layout fields kept once per template while a row's are the template's (see above).
@@ -65,11 +71,13 @@ class ParkedRows:
         width = template.rows.shape[1]
         shared = shared_columns(template.layout)
         self._shared = shared
-        self._kept = np.r_[0 : shared.start, shared.stop : width]
+        # A kept row is the row without the shared columns: [0, start) then [stop, width).
+        self._kept_width = width - (shared.stop - shared.start)
         self._template_shared = template.rows[0, shared].copy()
         self._template_bits = self._template_shared.view(np.uint64)
         self._width = width
         self._chunks: list[Array] = []
+        self._starts: list[int] = []  # the first slot of each array
         self._names: list[str | None] = []  # by slot; None when free
         self._free: list[int] = []
         self._own_shared: dict[int, Array] = {}  # slot → its prior, where not the template's
@@ -83,7 +91,7 @@ class ParkedRows:
     @property
     def capacity(self) -> int:
         """Slots allocated (held or free)."""
-        return len(self._chunks) * CHUNK_ROWS
+        return self._starts[-1] + len(self._chunks[-1]) if self._chunks else 0
 
     def put(self, names: Sequence[str], packed: PackedChannels) -> list[int]:
         """Store `packed`'s rows (channel `names[i]` in row i); returns their slots.
@@ -91,16 +99,16 @@ class ParkedRows:
         if packed.model != self.model or packed.layout != self.layout:
             raise ValueError("ParkedRows.put takes rows of the store's own model and layout")
         rows = packed.rows
-        slots = [self._take_slot(name) for name in names]
+        if rows.shape != (len(names), self._width) or len(packed.sides) != len(names):
+            raise ValueError(f"ParkedRows.put takes one row and one side per name ({len(names)})")
+        slots = [self._take_slot(name) for name in names]  # nothing can fail from here on
         shared = rows[:, self._shared]
         own = np.flatnonzero((shared.view(np.uint64) != self._template_bits).any(axis=1))
-        kept = rows[:, self._kept]
-        for chunk_index, group in itertools.groupby(
-            range(len(slots)), key=lambda i: slots[i] // CHUNK_ROWS
-        ):
-            indices = list(group)
-            offsets = [slots[i] % CHUNK_ROWS for i in indices]
-            self._chunks[chunk_index][offsets] = kept[indices]
+        start, stop = self._shared.start, self._shared.stop
+        for i, slot in enumerate(slots):
+            chunk, offset = self._place(slot)
+            chunk[offset, :start] = rows[i, :start]
+            chunk[offset, start:] = rows[i, stop:]
         for i in own.tolist():
             self._own_shared[slots[i]] = shared[i].copy()
         for slot, side in zip(slots, packed.sides, strict=True):
@@ -112,12 +120,20 @@ class ParkedRows:
         """The rows at `slots`, in that order, whole (the shared columns put back): copies.
         The caller holds `lock`."""
         result = np.empty((len(slots), self._width))
+        values = np.empty((len(slots), self._kept_width))
         if len(slots) == 1:
-            values = self._chunks[slots[0] // CHUNK_ROWS][slots[0] % CHUNK_ROWS]
-        else:  # a snapshot's many rows: one gather over the arrays joined
-            joined = self._chunks[0] if len(self._chunks) == 1 else np.concatenate(self._chunks)
-            values = joined[np.asarray(slots, dtype=np.intp)]
-        result[:, self._kept] = values
+            chunk, offset = self._place(slots[0])
+            values[0] = chunk[offset]
+        else:  # a snapshot's many rows: one gather per array, none joined
+            wanted = np.asarray(slots, dtype=np.intp)
+            which = np.searchsorted(self._starts, wanted, side="right") - 1
+            for index, (first, chunk) in enumerate(zip(self._starts, self._chunks, strict=True)):
+                mine = np.flatnonzero(which == index)
+                if len(mine):
+                    values[mine] = chunk[wanted[mine] - first]
+        start, stop = self._shared.start, self._shared.stop
+        result[:, :start] = values[:, :start]
+        result[:, stop:] = values[:, start:]
         result[:, self._shared] = self._template_shared
         sides: list[dict[str, Any] | None] = []
         for i, slot in enumerate(slots):
@@ -146,6 +162,11 @@ class ParkedRows:
         self._sides.pop(slot, None)
         self._free.append(slot)
 
+    def _place(self, slot: int) -> tuple[Array, int]:
+        """The array holding `slot` and the slot's row in it."""
+        index = bisect.bisect_right(self._starts, slot) - 1
+        return self._chunks[index], slot - self._starts[index]
+
     def _take_slot(self, name: str) -> int:
         if self._free:
             slot = self._free.pop()
@@ -153,6 +174,8 @@ class ParkedRows:
             return slot
         slot = len(self._names)
         if slot == self.capacity:
-            self._chunks.append(np.empty((CHUNK_ROWS, len(self._kept))))
+            size = min(CHUNK_ROWS, 2 * len(self._chunks[-1])) if self._chunks else FIRST_CHUNK_ROWS
+            self._starts.append(slot)
+            self._chunks.append(np.empty((size, self._kept_width)))
         self._names.append(name)
         return slot

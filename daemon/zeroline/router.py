@@ -317,8 +317,8 @@ class ChannelTable:
         channel = self.channels.get(name)
         if channel is not None:
             return channel
-        if name not in self.parked:
-            return None
+        if name not in self.parked:  # or unparked by the worker just now
+            return self.channels.get(name)
         try:
             return self._unpacked(name)
         except KeyError:  # unparked by the worker meanwhile
@@ -360,7 +360,28 @@ class ChannelTable:
         wildcards: list[tuple[str, ...]],
         packed: PackedChannels,
     ) -> None:
-        """Add restored channels as `packed` rows (in the layout of `template`'s config)."""
+        """Add restored channels as `packed` rows (in the layout of `template`'s config).
+
+        A name the table already has, or one given twice, keeps its first state: a
+        snapshot lists each channel once, so a second one is a damaged or hand-made file
+        (or two templates that make the same name), and two rows for one channel would
+        both be written to every snapshot after."""
+        seen: set[str] = set()
+        keep: list[int] = []
+        for i, name in enumerate(names):
+            if name not in seen and name not in self.channels and name not in self.parked:
+                keep.append(i)
+            seen.add(name)
+        if len(keep) < len(names):
+            _log.warning(
+                "%d saved channel state(s) of template %r name a channel already restored; "
+                "the first state of each is kept",
+                len(names) - len(keep),
+                template,
+            )
+            names = [names[i] for i in keep]
+            wildcards = [wildcards[i] for i in keep]
+            packed = packed.take(keep)
         config = self.routes.templates[template]
         store = self._store(template)
         with store.lock:
@@ -467,8 +488,8 @@ class ChannelTable:
         """The wildcard levels channel `name` was made with (KeyError for no such channel).
 
         Most names give them back by parsing (`{1}-gas` and `m12-gas` give `m12`), so
-        they are kept only for names that do not (`{1}-{2}` from `a-b` and `c` parses as
-        `a` and `b-c`; a template name that leaves a level out): ~170 bytes a channel
+        they are kept only for names that do not (`{1}-{2}` from `a` and `b-c` parses as
+        `a-b` and `c`; a template name that leaves a level out): ~170 bytes a channel
         fewer at 10,000 channels than a (template, wildcards) pair each."""
         odd = self._odd_wildcards.get(name)
         if odd is not None:

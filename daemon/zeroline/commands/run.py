@@ -51,7 +51,7 @@ def run(args: argparse.Namespace) -> int:
     timeseries = _timeseries(config, service)
     board = StatusBoard(
         names=lambda: list(service.table.names()),
-        lookup=service.table.view,
+        lookup=lambda name: service.table.view(name),  # the table a reload replaces
         counters=service.counters.as_dict,
         ready=broker.connected.is_set,
         extra=_sink_gauges(timeseries),
