@@ -8,7 +8,12 @@ One private Mosquitto; two daemons in turn, each with a fresh topic root:
    channels are kept as packed rows (`zeroline.router.ChannelTable`);
 2. with a tight bound (`--tight`, 500), what a gateway short of memory can set: every
    reading of a parked channel then pays its unpacking (~120 µs) in CPU;
-3. with every channel resident (`resident_channels` = the channel count), for comparison.
+3. with every channel resident (`resident_channels` = the channel count), for comparison;
+4. with the default bound and only as many channels as it holds (all resident).
+
+From 1, 3 and 4 a capacity model for planning: what each parked channel adds (1 minus 4,
+over the channels beyond the bound) and what each resident one adds on top (3 minus 1,
+over the same channels), so RSS ≈ idle + parked × that + resident × the sum.
 
 VmRSS (/proc/PID/status) is read once the daemon is connected and idle with 0 channels (the
 interpreter, numpy, scipy, paho and zeroline: the baseline), then after `readings` readings
@@ -88,6 +93,9 @@ def main() -> int:
     parser.add_argument("--readings", type=int, default=2)
     parser.add_argument("--tight", type=int, default=500, help="the tight resident bound")
     args = parser.parse_args()
+    default = int(next(key.default for key in LIMIT_KEYS if key.name == "resident_channels"))
+    if args.channels <= default:
+        parser.error(f"--channels must exceed the default resident bound ({default:,})")
     print(machine())
     broker = start_broker()
     try:
@@ -95,11 +103,11 @@ def main() -> int:
             measure(broker, args.channels, args.readings, resident)
             for resident in (None, args.tight, args.channels)
         ]
+        within_bound = measure(broker, default, args.readings, None)
     finally:
         broker.cleanup()
     print(f"\nVmRSS, {args.channels} channels at p = 6, {args.readings} readings each")
     rows = []
-    default = next(key.default for key in LIMIT_KEYS if key.name == "resident_channels")
     labels = (
         f"default resident bound ({default:,})",
         f"resident_channels: {args.tight:,}",
@@ -123,6 +131,15 @@ def main() -> int:
         )
     )
     print("targets: <= 1 KB (1,024 bytes) per channel, <= 80 MB total")
+    beyond = args.channels - default
+    parked = (runs[0].loaded_kib - within_bound.loaded_kib) * 1024 / beyond
+    resident = (runs[2].loaded_kib - runs[0].loaded_kib) * 1024 / beyond
+    print(
+        f"capacity model: {default:,} channels, all resident: "
+        f"{within_bound.loaded_kib / 1024:.1f} MiB (idle {within_bound.idle_kib / 1024:.1f}); "
+        f"each channel beyond the bound, parked: +{parked:,.0f} B; "
+        f"resident instead: +{resident:,.0f} B more"
+    )
     print(machine())
     return 0
 
