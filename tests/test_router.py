@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import pytest
 
 from zeroline.channel import Channel, Sample, pack_channels
@@ -207,6 +209,25 @@ channels:
         table.park("{1}-{2}-no2", ["n-1-no2"], [("n", "1")], again)
         [(_, names, rows)] = table.parked_blocks()
         assert names == ["n-1-no2"] and rows.rows.tobytes() == packed.rows[:1].tobytes()
+
+    def test_a_channel_name_is_one_string_object_in_every_table(self, routes: Routes) -> None:
+        """However often a name is made anew (each topic match the match memory forgot
+        fills it again), the table keys and the channel hold one string object for it,
+        through parking and unparking."""
+        table = ChannelTable(routes, max_channels=10, max_resident=1)
+        first = table.create("{1}-{2}-no2", ("n", "1"), "".join(["n-1", "-no2"]))
+        assert first is not None
+        name = first.name
+        again = "".join(["n-1-", "no2"])
+        assert again == name and again is not name
+        assert table.create("{1}-{2}-no2", ("n", "2")) is not None  # parks n-1-no2
+
+        def key(table_of: Any) -> str:
+            return next(k for k in table_of if k == name)
+
+        assert key(table.parked) is name and key(table._template_of) is name
+        unparked = table.get(again)
+        assert unparked is not None and unparked.name is name and key(table.channels) is name
 
 
 def test_remembered_matches_are_the_same_and_bounded() -> None:

@@ -37,7 +37,6 @@ from __future__ import annotations
 import heapq
 import logging
 import re
-import sys
 from collections import OrderedDict
 from collections.abc import Iterable
 from dataclasses import dataclass
@@ -64,17 +63,13 @@ MATCHES_REMEMBERED_PER_CHANNEL = 2
 
 
 def fill(template: str, wildcards: tuple[str, ...]) -> str:
-    """`template` with {1}, {2}… replaced by the matched wildcard levels.
-
-    Interned: a channel's name is a key of several tables (channels, parked rows, their
-    template, the status board's, the snapshot's dirty set), and each match of a topic the
-    match memory has forgotten makes the name anew; one shared string per channel, not one
-    per table, saves ~60 bytes a table a channel.
+    """`template` with {1}, {2}… replaced by the matched wildcard levels (a new string:
+    `ChannelTable` keeps one string object per channel name, see `ChannelTable.create`).
 
     >>> fill("{1}-no2", ("a",))
     'a-no2'
     """
-    return sys.intern(PLACEHOLDER.sub(lambda m: wildcards[int(m.group(1)) - 1], template))
+    return PLACEHOLDER.sub(lambda m: wildcards[int(m.group(1)) - 1], template)
 
 
 @dataclass(frozen=True)
@@ -286,6 +281,13 @@ class ChannelTable:
         self._template_of: dict[str, str] = {}
         self._odd_wildcards: dict[str, tuple[str, ...]] = {}
         self._name_patterns: dict[str, re.Pattern[str]] = {}
+        # One string object per channel name, whatever made it: the name is a key of
+        # several tables (channels, parked rows, templates, the status board's, the
+        # snapshot's dirty set), and each match of a topic that the match memory has
+        # forgotten makes the name anew. A dict of our own rather than sys.intern:
+        # interning 10,000 names grew the interpreter's table of interned strings by ~100
+        # bytes a name (tracemalloc), this dict by ~20.
+        self._one_string: dict[str, str] = {}
         self.parked: dict[str, int] = {}  # name → its slot in its template's store
         self._stores: dict[str, ParkedRows] = {}  # template → its parked rows
         self._input_index: dict[str, list[tuple[str, str]]] = {}  # topic → (channel, input)
@@ -345,7 +347,7 @@ class ChannelTable:
                 "raise limits.max_channels if the site really has more sensors",
             )
             return None
-        channel = Channel(config, name)
+        channel = Channel(config, self._one_string.setdefault(name, name))
         self._adopt(channel, template, wildcards)
         return channel
 
@@ -366,6 +368,7 @@ class ChannelTable:
         snapshot lists each channel once, so a second one is a damaged or hand-made file
         (or two templates that make the same name), and two rows for one channel would
         both be written to every snapshot after."""
+        names = [self._one_string.setdefault(name, name) for name in names]
         seen: set[str] = set()
         keep: list[int] = []
         for i, name in enumerate(names):
@@ -420,6 +423,7 @@ class ChannelTable:
         return channel
 
     def _unpark(self, name: str) -> Channel:
+        name = self._one_string.get(name, name)  # the parked name's own string object
         template = self._template_of[name]
         try:
             channel = self._unpacked(name)
@@ -470,6 +474,7 @@ class ChannelTable:
         self.evicted += len(oldest)
 
     def _adopt(self, channel: Channel, template: str, wildcards: tuple[str, ...]) -> None:
+        channel.name = self._one_string.setdefault(channel.name, channel.name)
         self.channels[channel.name] = channel
         self._remember_origin(channel.name, template, wildcards)
         self._index_inputs(channel.name, channel.config, wildcards)
