@@ -280,7 +280,8 @@ class ChannelTable:
         # levels only where parsing the name back would not give them (`wildcards_of`).
         self._template_of: dict[str, str] = {}
         self._odd_wildcards: dict[str, tuple[str, ...]] = {}
-        self._name_patterns: dict[str, re.Pattern[str]] = {}
+        # template → (regex reading a name back, the number of wildcard levels)
+        self._name_patterns: dict[str, tuple[re.Pattern[str], int]] = {}
         # One string object per channel name, whatever made it: the name is a key of
         # several tables (channels, parked rows, templates, the status board's, the
         # snapshot's dirty set), and each match of a topic that the match memory has
@@ -386,11 +387,7 @@ class ChannelTable:
             wildcards = [wildcards[i] for i in keep]
             packed = packed.take(keep)
         config = self.routes.templates[template]
-        store = self._store(template)
-        with store.lock:
-            slots = store.put(names, packed)
-            for name, slot in zip(names, slots, strict=True):
-                self.parked[name] = slot
+        self._put_parked(template, names, packed)
         for name, levels in zip(names, wildcards, strict=True):
             self._remember_origin(name, template, levels)
             self._index_inputs(name, config, levels)
@@ -404,6 +401,14 @@ class ChannelTable:
                 if names:
                     blocks.append((template, names, store.rows(slots)))
         return blocks
+
+    def _put_parked(self, template: str, names: list[str], packed: PackedChannels) -> None:
+        """Store `packed`'s rows as channels `names` of `template`, parked."""
+        store = self._store(template)
+        with store.lock:
+            slots = store.put(names, packed)
+            for name, slot in zip(names, slots, strict=True):
+                self.parked[name] = slot
 
     def _store(self, template: str) -> ParkedRows:
         store = self._stores.get(template)
@@ -462,12 +467,8 @@ class ChannelTable:
         for name in oldest:
             groups.setdefault(self._template_of[name], []).append(name)
         for template, names in groups.items():
-            packed = pack_channels([self.channels[name] for name in names])
-            store = self._store(template)
-            with store.lock:
-                slots = store.put(names, packed)
-                for name, slot in zip(names, slots, strict=True):
-                    self.parked[name] = slot  # parked first, then no longer in use
+            # Parked first, then no longer in use (as in `_unpark`, the other way).
+            self._put_parked(template, names, pack_channels([self.channels[n] for n in names]))
             for name in names:
                 del self.channels[name]
                 del self._used[name]
@@ -513,14 +514,15 @@ class ChannelTable:
     def _parsed_wildcards(self, template: str, name: str) -> tuple[str, ...] | None:
         """The levels that fill `template`'s name into `name`, read back by a regex (None
         if it does not match); `_remember_origin` checks them against the real ones."""
-        pattern = self._name_patterns.get(template)
-        if pattern is None:
-            pattern = self._name_patterns[template] = _template_regex(template)
+        known = self._name_patterns.get(template)
+        if known is None:
+            levels = self.routes.templates[template].topic.split("/").count("+")
+            known = self._name_patterns[template] = (_template_regex(template), levels)
+        pattern, levels = known
         found = pattern.fullmatch(name)
         if found is None:
             return None
         groups = found.groupdict()
-        levels = self.routes.templates[template].topic.split("/").count("+")
         if len(groups) != levels:  # a level the name leaves out cannot be read back
             return None
         return tuple(groups[f"p{i}"] for i in range(1, levels + 1))
