@@ -6,6 +6,7 @@ import json
 import logging
 import math
 import threading
+import time
 from pathlib import Path
 from typing import Any
 
@@ -622,6 +623,31 @@ class TestResidentBound:
         viewer.join()
         assert service.table.evicted > 200 and views > 100
         assert wrong == []
+        service.stop()
+
+    def test_an_idle_worker_trims_the_heap_after_many_moves(
+        self, state_dir: Path, monkeypatch: pytest.MonkeyPatch
+    ) -> None:
+        """Once TRIM_AFTER_CHANNELS channels were made or parked, the next idle moment
+        hands the heap's free pages back, once; idle moments without moves do not."""
+        import zeroline.service as service_module
+
+        trims: list[float] = []
+        monkeypatch.setattr(service_module, "TRIM_AFTER_CHANNELS", 10)
+        monkeypatch.setattr(service_module, "give_back_free_pages", lambda: trims.append(1.0))
+        config = parse_config(config_text(state_dir, resident_channels=2))
+        broker = FakeBroker()
+        service = start(config, broker, state_dir)
+        for i in range(4):  # 4 made, 2 of them parked: 6 moves
+            broker.deliver(f"site/t{i}/gas", reading_payload(T0, 1.0))
+        assert service.wait_idle(5)
+        time.sleep(0.2)  # ten idle ticks
+        assert trims == []
+        for i in range(4, 8):  # 4 more made, 4 more parked: 14
+            broker.deliver(f"site/t{i}/gas", reading_payload(T0, 1.0))
+        assert service.wait_idle(5, lambda: len(trims) == 1)
+        time.sleep(0.2)
+        assert len(trims) == 1 and service.table.evicted >= 6
         service.stop()
 
 

