@@ -133,8 +133,9 @@ def assert_same_as_never_stopped(
     direct = Channel(config.channels[0], name)
     for t, v, _ in rows:
         direct.process(Sample(t, v))
-    got = service.table.channels[name].estimator.coefficients
-    assert np.array_equal(got, direct.estimator.coefficients)
+    channel = service.table.get(name)  # unpacked if it was restored or parked
+    assert channel is not None
+    assert np.array_equal(channel.estimator.coefficients, direct.estimator.coefficients)
 
 
 @pytest.fixture()
@@ -332,6 +333,88 @@ class TestState:
         np.testing.assert_allclose(got, direct.estimator.coefficients, rtol=0, atol=1e-12)
         first._stop.set()
         second.stop()
+
+    def test_a_periodic_snapshot_does_not_wait_for_the_journal(
+        self, state_dir: Path, monkeypatch: pytest.MonkeyPatch
+    ) -> None:
+        """With the journal's fsync stuck (a slow disk), a snapshot falls due: the worker
+        packs it and goes on correcting readings; the committer writes it after the journal
+        batches before it and empties the journal before the next. A crash afterwards
+        restores snapshot + journal to exactly the state of a channel fed every reading."""
+        import zeroline.service as service_module
+
+        monkeypatch.setattr(service_module, "JOURNAL_SNAPSHOT_RECORDS", 10)
+        config = parse_config(config_text(state_dir))
+        rows = readings(30)
+        broker = FakeBroker()
+        first = start(config, broker, state_dir)
+        real = first.store.append_journal
+        disk = threading.Event()
+
+        def slow_disk(records: list[dict[str, Any]]) -> None:
+            disk.wait(10)
+            real(records)
+
+        monkeypatch.setattr(first.store, "append_journal", slow_disk)
+        self.feed(broker, rows[:12])  # 12 journal records on their way: a snapshot is due
+        deadline = time.monotonic() + 5  # until all 12 are handed to the stuck committer
+        while first._committer.pending() < 12 and time.monotonic() < deadline:
+            time.sleep(0.01)
+        self.feed(broker, rows[12:20])
+        deadline = time.monotonic() + 1.0  # a worker waiting for the disk would stall here
+        while len(broker.on("a-gas/corrected")) < 20 and time.monotonic() < deadline:
+            time.sleep(0.01)
+        assert len(broker.on("a-gas/corrected")) == 20
+        assert broker.acked == [] and first.counters.get("snapshots") == 0
+        disk.set()
+        assert first.wait_idle(5, lambda: first.counters.get("snapshots") == 1)
+        snapshot = first.store.load_snapshot()
+        assert snapshot is not None
+        saved = int(snapshot.meta["journal_seq"])
+        journal = [json.loads(line) for line in (state_dir / "journal.jsonl").open()]
+        assert 12 <= saved < 20
+        assert [record["s"] for record in journal] == list(range(saved + 1, 21))
+        self.feed(broker, rows[20:])
+        assert first.wait_idle(5)
+        # "crash": abandon the first service without stop(); its files stay as they are
+        second = start(config, FakeBroker(), state_dir)
+        assert_same_as_never_stopped(second, config, "a-gas", rows)
+        first._stop.set()
+        second.stop()
+
+    def test_a_failed_background_snapshot_keeps_the_journal_and_is_tried_again(
+        self, state_dir: Path, monkeypatch: pytest.MonkeyPatch
+    ) -> None:
+        import zeroline.service as service_module
+
+        monkeypatch.setattr(service_module, "JOURNAL_SNAPSHOT_RECORDS", 10)
+        config = parse_config(config_text(state_dir))
+        rows = readings(15)
+        broker = FakeBroker()
+        service = start(config, broker, state_dir)
+        service.snapshot_every = 0.2  # the retry comes one period after the failure
+        real = service.store.save_snapshot
+        attempts: list[float] = []
+
+        def full_disk_once(groups: Any, meta: Any) -> int:
+            attempts.append(time.monotonic())
+            if len(attempts) == 1:
+                raise OSError(28, "No space left on device")
+            return real(groups, meta)
+
+        monkeypatch.setattr(service.store, "save_snapshot", full_disk_once)
+        self.feed(broker, rows)
+        assert service.wait_idle(5, lambda: len(attempts) == 1)
+        assert service.counters.get("snapshots") == 0
+        journal = (state_dir / "journal.jsonl").read_text().splitlines()
+        assert len(journal) == 15  # nothing emptied by the failed snapshot
+        assert service.wait_idle(5, lambda: service.counters.get("snapshots") == 1)
+        assert len(attempts) == 2 and attempts[1] - attempts[0] >= 0.2
+        assert (state_dir / "journal.jsonl").read_text() == ""
+        again = start(config, FakeBroker(), state_dir)
+        assert_same_as_never_stopped(again, config, "a-gas", rows)
+        service._stop.set()
+        again.stop()
 
     def test_a_json_snapshot_of_the_previous_version_is_upgraded(self, state_dir: Path) -> None:
         """A daemon upgraded in the field finds the version-1 `snapshot.json` (and its

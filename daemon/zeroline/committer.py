@@ -12,6 +12,12 @@ sequence numbers the worker gave it. A failing write (disk full) is retried, the
 with the same numbers, until it works or the service stops; nothing behind it is written or
 acknowledged first, and the worker's bound on what is processed but unacknowledged
 (`pending`) makes the backlog push back on the broker as before.
+
+Tasks. `run_in_order` queues a function among the batches: it runs once every batch
+submitted before it is written and acknowledged, and before any submitted after it. The
+worker writes its periodic snapshot this way (`zeroline.service`): the journal batches
+that the snapshot makes redundant are on disk before it, and it empties the journal before
+the next batch is appended, so the worker does not wait for either fsync.
 """
 
 from __future__ import annotations
@@ -36,6 +42,9 @@ class Batch:
     tokens: list[Any]  # broker acknowledgement tokens, None for messages without one
 
 
+Task = Callable[[], None]
+
+
 class Committer:
     """One thread: `submit` batches; each is journaled, fsync'ed, then acknowledged."""
 
@@ -47,7 +56,7 @@ class Committer:
         flush: Callable[[], None],
     ) -> None:
         self._append, self._ack, self._count, self._flush = append, ack, count, flush
-        self._batches: deque[Batch] = deque()
+        self._batches: deque[Batch | Task] = deque()
         self._pending = 0  # messages submitted but not yet acknowledged
         self._condition = threading.Condition()
         self._stopping = False
@@ -63,15 +72,22 @@ class Committer:
             self._pending += len(batch.tokens)
             self._condition.notify()
 
+    def run_in_order(self, task: Task) -> None:
+        """Run `task` on the committer's thread after everything submitted so far (an
+        exception it raises is logged, and the thread goes on)."""
+        with self._condition:
+            self._batches.append(task)
+            self._condition.notify()
+
     def pending(self) -> int:
         """Messages handed over but not yet durable and acknowledged."""
         with self._condition:
             return self._pending
 
     def wait_drained(self, timeout: float) -> bool:
-        """Wait until everything submitted is written and acknowledged."""
+        """Wait until everything submitted is written and acknowledged, and every task run."""
         with self._condition:
-            return self._condition.wait_for(lambda: self._pending == 0, timeout)
+            return self._condition.wait_for(lambda: not self._batches, timeout)
 
     def stop(self, timeout: float) -> None:
         """Finish what was submitted (within `timeout`), then end the thread. What is not
@@ -89,19 +105,32 @@ class Committer:
                 self._condition.wait_for(lambda: self._batches or self._stopping)
                 if self._stopping:
                     return
-                batch = self._batches[0]
-            if not self._write(batch):
-                return
-            for token in batch.tokens:
-                if token is not None:
-                    self._ack(token)
-            self._flush()  # the batch's acknowledgements leave together
-            self._count("journal_records", len(batch.records))
-            self._count("acked", len(batch.tokens))
+                item = self._batches[0]
+            if isinstance(item, Batch):
+                if not self._write(item):
+                    return
+                self._acknowledge(item)
+            else:
+                self._run_task(item)
             with self._condition:
                 self._batches.popleft()
-                self._pending -= len(batch.tokens)
+                if isinstance(item, Batch):
+                    self._pending -= len(item.tokens)
                 self._condition.notify_all()
+
+    def _acknowledge(self, batch: Batch) -> None:
+        for token in batch.tokens:
+            if token is not None:
+                self._ack(token)
+        self._flush()  # the batch's acknowledgements leave together
+        self._count("journal_records", len(batch.records))
+        self._count("acked", len(batch.tokens))
+
+    def _run_task(self, task: Task) -> None:
+        try:
+            task()
+        except Exception:  # a bug in a task must not stop the acknowledgements
+            _log.exception("a task on the committer thread failed")
 
     def _write(self, batch: Batch) -> bool:
         """Append the batch, retrying a failing disk; False if stopped before it worked."""

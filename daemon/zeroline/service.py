@@ -48,9 +48,13 @@ acknowledgements), so the two cannot deadlock.
 Commits are batched: when `broker.inflight // 2` messages are ready, when the oldest has
 waited `COMMIT_DELAY_S`, or when the queue is empty and the oldest has waited
 `IDLE_COMMIT_S` (one fsync per batch, on the committer thread). A snapshot needs
-a quiet moment (no processed-but-uncommitted message, so snapshot and journal agree): when
-one is due the worker stops taking new work until the outputs in transit are confirmed, at
-most `QUIESCE_TIMEOUT_S`, and tries again later if the broker is away.
+a quiet moment (every processed message handed to the committer, so snapshot and journal
+agree): when one is due the worker stops taking new work until the outputs in transit are
+confirmed, at most `QUIESCE_TIMEOUT_S` (it tries again later if the broker is away), packs
+every channel's state and goes on; the committer writes the snapshot after the journal
+batches before it and empties the journal before the next, so no fsync stalls the
+worker (a slow disk's fsync can take 100-200 ms). A reload and the final snapshot at
+shutdown also wait for the committer to finish (`_quiesce`).
 
 Bad input of every kind becomes one message on `<prefix>/error` (`{"time", "topic",
 "reason", "detail", "payload"}`, the payload cut to 200 characters), one counter per
@@ -223,6 +227,10 @@ class Service:
         self._last_snapshot = time.monotonic()
         self._last_stats = 0.0
         self._moves_at_trim = 0  # `_channel_moves()` when the heap was last trimmed
+        # Set by the thread that wrote the snapshot (it may be the committer's), read by the
+        # worker: a failed write is tried again one period later.
+        self._snapshot_failed = False
+        self._snapshot_writing = False  # a snapshot handed to the committer, not yet written
         self._subscribed: set[str] = set()
         self._stop = threading.Event()
         self._closed = threading.Event()
@@ -311,10 +319,12 @@ class Service:
             self._commit(force=True)
             time.sleep(COMMIT_WAIT_S)
             return
-        if (self._reload is not None or self._snapshot_due()) and self._quiesce():
-            if self._reload is not None:
+        if self._reload is not None:
+            if self._quiesce():
                 self._apply_reload()
-            self.snapshot()
+                self.snapshot()
+        elif not self._snapshot_writing and self._snapshot_due() and self._handed_over():
+            self._snapshot_in_background()
         try:
             work = self._queue.get(timeout=self._idle_wait())
         except queue.Empty:
@@ -614,7 +624,21 @@ class Service:
     def _snapshot_due(self) -> bool:
         if self._journal_since_snapshot >= JOURNAL_SNAPSHOT_RECORDS:
             return True
-        return bool(self._dirty) and time.monotonic() - self._last_snapshot >= self.snapshot_every
+        changed = bool(self._dirty) or self._snapshot_failed
+        return changed and time.monotonic() - self._last_snapshot >= self.snapshot_every
+
+    def _handed_over(self, timeout: float = QUIESCE_TIMEOUT_S) -> bool:
+        """Hand every processed message to the committer (their outputs confirmed first),
+        without waiting for the journal; False if that cannot happen now."""
+        deadline = time.monotonic() + timeout
+        while True:
+            self._commit(force=True)
+            if not self._awaiting:
+                return True
+            if self._queue.full() or time.monotonic() > deadline:  # as in `_quiesce`
+                self._last_snapshot = time.monotonic()  # try again one period later
+                return False
+            time.sleep(0.001)
 
     def _quiesce(self, timeout: float = QUIESCE_TIMEOUT_S) -> bool:
         """Commit everything processed so far; False if that cannot happen now."""
@@ -630,32 +654,56 @@ class Service:
             time.sleep(0.002)
 
     def snapshot(self) -> None:
-        """Write every channel's state (call only when nothing awaits a commit).
+        """Write every channel's state now (call only when nothing awaits a commit and the
+        committer is idle: `_quiesce`).
 
         Every channel in use is packed each time (10,000 in about 0.15 s, see
         bench/RESULTS.md), so no per-channel copy of the state is kept in memory; parked
         channels are written as the rows they were restored from.
         """
+        self._save_snapshot(*self._snapshot_contents())
+
+    def _snapshot_in_background(self) -> None:
+        """Pack every channel's state now and let the committer write it after the journal
+        batches already handed to it (call only when nothing awaits a commit:
+        `_handed_over`). The worker goes on meanwhile; the records it commits next are
+        appended after the snapshot has emptied the journal (`Committer.run_in_order`)."""
+        groups, meta = self._snapshot_contents()
+        self._snapshot_writing = True  # one at a time: a slow disk must not pile them up
+        self._committer.run_in_order(lambda: self._save_snapshot(groups, meta))
+
+    def _snapshot_contents(self) -> tuple[list[SnapshotGroup], dict[str, Any]]:
+        """Every channel's state and the snapshot's metadata, as of now; what changes from
+        here on is the next snapshot's."""
         groups = self._snapshot_groups()
         meta = {
             "journal_seq": self._journal_seq,
             "saved_at": time.time(),
             "latest_inputs": self.table.latest_inputs(),
         }
+        self._dirty.clear()
+        self._journal_since_snapshot = 0
+        self._last_snapshot = time.monotonic()
+        self._snapshot_failed = False
+        return groups, meta
+
+    def _save_snapshot(self, groups: list[SnapshotGroup], meta: dict[str, Any]) -> None:
+        """Write the snapshot and empty the journal it makes redundant (the worker's thread
+        or the committer's; a failure leaves the journal as it is and is retried one
+        snapshot period later)."""
         try:
             size = self.store.save_snapshot(groups, meta)
             self.store.reset_journal()
         except OSError as error:
             _log.error("cannot write the state snapshot (%s); will retry", error.strerror)
-            self._last_snapshot = time.monotonic()
+            self._snapshot_failed = True
             return
-        self._dirty.clear()
-        self._journal_since_snapshot = 0
-        self._last_snapshot = time.monotonic()
+        finally:
+            self._snapshot_writing = False
         self.counters.add("snapshots")
         _log.debug(
             "snapshot of %d channels, %d bytes in %.1f ms",
-            len(self.table),
+            sum(len(group.names) for group in groups),
             size,
             1000 * (self.store.last_snapshot_s or 0.0),
         )
