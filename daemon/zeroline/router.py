@@ -281,7 +281,7 @@ class ChannelTable:
         self._template_of: dict[str, str] = {}
         self._odd_wildcards: dict[str, tuple[str, ...]] = {}
         # template → (regex reading a name back, the number of wildcard levels)
-        self._name_patterns: dict[str, tuple[re.Pattern[str], int]] = {}
+        self._name_patterns: dict[str, tuple[re.Pattern[str] | None, tuple[str, ...]]] = {}
         # One string object per channel name, whatever made it: the name is a key of
         # several tables (channels, parked rows, templates, the status board's, the
         # snapshot's dirty set), and each match of a topic that the match memory has
@@ -516,16 +516,29 @@ class ChannelTable:
         if it does not match); `_remember_origin` checks them against the real ones."""
         known = self._name_patterns.get(template)
         if known is None:
-            levels = self.routes.templates[template].topic.split("/").count("+")
-            known = self._name_patterns[template] = (_template_regex(template), levels)
-        pattern, levels = known
+            known = self._name_patterns[template] = self._name_pattern(template)
+        pattern, groups = known
+        if pattern is None:
+            return None
         found = pattern.fullmatch(name)
         if found is None:
             return None
-        groups = found.groupdict()
-        if len(groups) != levels:  # a level the name leaves out cannot be read back
-            return None
-        return tuple(groups[f"p{i}"] for i in range(1, levels + 1))
+        # One call for all levels (a snapshot reads back every channel's): `group` with
+        # one name gives a string, with several a tuple.
+        if len(groups) == 1:
+            return (found.group(groups[0]),)
+        return found.group(*groups) if groups else ()
+
+    def _name_pattern(self, template: str) -> tuple[re.Pattern[str] | None, tuple[str, ...]]:
+        """The regex reading `template`'s levels back from a channel name and its groups
+        p1, p2… in level order; no regex if the name leaves a level out (it cannot be read
+        back)."""
+        levels = self.routes.templates[template].topic.split("/").count("+")
+        pattern = _template_regex(template)
+        groups = tuple(f"p{i}" for i in range(1, levels + 1))
+        if set(pattern.groupindex) != set(groups):
+            return None, groups
+        return pattern, groups
 
     def _index_inputs(self, name: str, config: ChannelConfig, wildcards: tuple[str, ...]) -> None:
         for spec in config.inputs.values():
