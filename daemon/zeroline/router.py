@@ -280,7 +280,7 @@ class ChannelTable:
         # levels only where parsing the name back would not give them (`wildcards_of`).
         self._template_of: dict[str, str] = {}
         self._odd_wildcards: dict[str, tuple[str, ...]] = {}
-        # template → (regex reading a name back, the number of wildcard levels)
+        # template → (regex reading a name's levels back, or None; its groups p1, p2…)
         self._name_patterns: dict[str, tuple[re.Pattern[str] | None, tuple[str, ...]]] = {}
         # One string object per channel name, whatever made it: the name is a key of
         # several tables (channels, parked rows, templates, the status board's, the
