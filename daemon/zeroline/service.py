@@ -323,7 +323,7 @@ class Service:
             if self._quiesce():
                 self._apply_reload()
                 self.snapshot()
-        elif not self._snapshot_writing and self._snapshot_due() and self._handed_over():
+        elif not self._snapshot_writing and self._snapshot_due() and self._quiesce(journal=False):
             self._snapshot_in_background()
         try:
             work = self._queue.get(timeout=self._idle_wait())
@@ -627,25 +627,14 @@ class Service:
         changed = bool(self._dirty) or self._snapshot_failed
         return changed and time.monotonic() - self._last_snapshot >= self.snapshot_every
 
-    def _handed_over(self, timeout: float = QUIESCE_TIMEOUT_S) -> bool:
-        """Hand every processed message to the committer (their outputs confirmed first),
-        without waiting for the journal; False if that cannot happen now."""
+    def _quiesce(self, timeout: float = QUIESCE_TIMEOUT_S, *, journal: bool = True) -> bool:
+        """Hand every processed message to the committer (their outputs confirmed first)
+        and, with `journal`, wait until it has written and acknowledged them all; False if
+        that cannot happen now."""
         deadline = time.monotonic() + timeout
         while True:
             self._commit(force=True)
-            if not self._awaiting:
-                return True
-            if self._queue.full() or time.monotonic() > deadline:  # as in `_quiesce`
-                self._last_snapshot = time.monotonic()  # try again one period later
-                return False
-            time.sleep(0.001)
-
-    def _quiesce(self, timeout: float = QUIESCE_TIMEOUT_S) -> bool:
-        """Commit everything processed so far; False if that cannot happen now."""
-        deadline = time.monotonic() + timeout
-        while True:
-            self._commit(force=True)
-            if not self._awaiting and self._committer.wait_drained(COMMIT_WAIT_S):
+            if not self._awaiting and (not journal or self._committer.wait_drained(COMMIT_WAIT_S)):
                 return True
             # A full queue may mean the network thread waits on us: never wait back.
             if self._queue.full() or time.monotonic() > deadline:
@@ -666,7 +655,7 @@ class Service:
     def _snapshot_in_background(self) -> None:
         """Pack every channel's state now and let the committer write it after the journal
         batches already handed to it (call only when nothing awaits a commit:
-        `_handed_over`). The worker goes on meanwhile; the records it commits next are
+        `_quiesce(journal=False)`). The worker goes on meanwhile; the records it commits next are
         appended after the snapshot has emptied the journal (`Committer.run_in_order`)."""
         groups, meta = self._snapshot_contents()
         self._snapshot_writing = True  # one at a time: a slow disk must not pile them up
